@@ -1,0 +1,5 @@
+"""``python -m labkit`` runs the ``labkit`` command."""
+
+from labkit.cli.main import main
+
+raise SystemExit(main())
