@@ -67,6 +67,10 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("demo", help="run the main job on the embedded demo bench and template")
     p.add_argument("--template", default="lab1-line-and-loads", help="demo template name or file")
     p.set_defaults(func=_cmd_demo)
+
+    from labkit.cli.predict import add_predict_parsers
+
+    add_predict_parsers(sub)
     return parser
 
 

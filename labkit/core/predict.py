@@ -1,0 +1,131 @@
+"""Predict every reading of a configuration or a whole template, with Monte Carlo tolerance bands.
+
+Bands are the 5th to 95th percentiles over ``n_samples`` component-tolerance
+samples (uniform within each component's tolerance; fixed, recorded seed).
+Ratings are checked on true RMS current (harmonics included) at the upper edge
+of the band, for the step's final state and for every intermediate state its
+switch changes pass through.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from numpy.typing import NDArray
+
+from labkit.core.bench import Bench
+from labkit.core.network import Network, NetworkError, compile_network
+from labkit.core.results import RowLabel, quantity_arrays
+from labkit.core.solve import Solution, sample_factors, solve_network
+from labkit.core.state import BenchState, apply_step, initial_state, intermediate_states
+from labkit.core.template import SessionTemplate
+
+DEFAULT_SEED = 1459
+DEFAULT_SAMPLES = 2000
+BAND_PERCENTILES = (5.0, 95.0)
+
+
+@dataclass
+class Prediction:
+    """Predicted values of one configuration: nominal, band, and what was flagged."""
+
+    labels: list[RowLabel]
+    nominal: NDArray[np.float64]
+    band_low: NDArray[np.float64]
+    band_high: NDArray[np.float64]
+    network: Network
+    solution: Solution
+    warnings: list[str] = field(default_factory=list)
+    rating_flags: list[str] = field(default_factory=list)
+    seed: int = DEFAULT_SEED
+    n_samples: int = 0
+
+    def value(self, location: str, quantity: str) -> float:
+        """The nominal prediction of one location and quantity."""
+        for k, lab in enumerate(self.labels):
+            if lab.location == location and lab.quantity == quantity:
+                return float(self.nominal[k])
+        msg = f"no prediction of {quantity} at {location}"
+        raise KeyError(msg)
+
+
+@dataclass
+class StepPrediction:
+    """The prediction of one template step."""
+
+    index: int
+    step_id: str
+    kind: str
+    state: BenchState
+    prediction: Prediction | None
+    error: str = ""
+
+
+def predict_state(bench: Bench, state: BenchState, *, n_samples: int = DEFAULT_SAMPLES, seed: int = DEFAULT_SEED,
+                  harmonics: bool = True) -> Prediction:
+    """Solve one configuration nominally and over tolerance samples."""
+    net = compile_network(bench, state)
+    sol = solve_network(net, harmonics=harmonics)
+    labels, nominal = quantity_arrays(sol)
+    low, high = nominal[0].copy(), nominal[0].copy()
+    if n_samples > 0 and net.parameters:
+        sol_mc = solve_network(net, sample_factors(net, n_samples, seed), harmonics=harmonics)
+        labels_mc, values = quantity_arrays(sol_mc)
+        if [lab.location + lab.quantity for lab in labels_mc] == [lab.location + lab.quantity for lab in labels]:
+            ok = np.isfinite(values)
+            with np.errstate(invalid="ignore"):
+                pct = np.nanpercentile(np.where(ok, values, np.nan), BAND_PERCENTILES, axis=0)
+            angle = np.array([lab.quantity.endswith("angle") or lab.quantity == "phase" for lab in labels])
+            low = np.where(np.isnan(pct[0]), nominal[0], pct[0])
+            high = np.where(np.isnan(pct[1]), nominal[0], pct[1])
+            # angles near +-180 would wrap: band them around the nominal value instead
+            spread = np.abs(high - low)
+            wrap = angle & (spread > 180)
+            low, high = np.where(wrap, nominal[0] - 180, low), np.where(wrap, nominal[0] + 180, high)
+    pred = Prediction(labels, nominal[0], np.minimum(low, nominal[0]), np.maximum(high, nominal[0]), net, sol,
+                      list(sol.warnings), [], seed, n_samples)
+    pred.rating_flags = _rating_flags(pred, "")
+    return pred
+
+
+def _rating_flags(pred: Prediction, context: str) -> list[str]:
+    flags = []
+    for k, lab in enumerate(pred.labels):
+        if lab.quantity == "loading" and pred.band_high[k] > 100.0:
+            flags.append(f"{lab.location} would carry {pred.band_high[k]:.0f} % of its rated current"
+                         f" (upper edge of the band){context}")
+    return flags
+
+
+def predict_template(bench: Bench, template: SessionTemplate, *, n_samples: int = DEFAULT_SAMPLES,
+                     seed: int = DEFAULT_SEED, harmonics: bool = True) -> list[StepPrediction]:
+    """Predict every step of a template, in order (intermediate switch states checked for ratings)."""
+    out: list[StepPrediction] = []
+    state = initial_state(bench)
+    for index, step in enumerate(template.steps):
+        before = state
+        state = apply_step(bench, state, step)
+        try:
+            pred = predict_state(bench, state, n_samples=n_samples, seed=seed, harmonics=harmonics)
+        except NetworkError as exc:
+            out.append(StepPrediction(index, step.id, step.kind, state, None, str(exc)))
+            continue
+        for mid in intermediate_states(before, state):
+            try:
+                mid_pred = predict_state(bench, mid, n_samples=min(n_samples, 500), seed=seed, harmonics=harmonics)
+            except NetworkError as exc:
+                pred.rating_flags.append(f"an intermediate switching state cannot be solved: {exc}")
+                continue
+            changed = _diff(before, mid)
+            pred.rating_flags += _rating_flags(mid_pred, f" while switching ({changed} done first)")
+        out.append(StepPrediction(index, step.id, step.kind, state, pred))
+    return out
+
+
+def _diff(before: BenchState, mid: BenchState) -> str:
+    parts = []
+    for attr in ("switches", "lines", "loads"):
+        old, new = dict(getattr(before, attr)), dict(getattr(mid, attr))
+        parts += [f"{k}={v}" for k, v in new.items() if old.get(k) != v]
+    return ", ".join(parts)

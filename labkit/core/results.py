@@ -1,0 +1,218 @@
+"""Readable quantities from a solution: every location and quantity a sensor or a rating check needs.
+
+:func:`quantity_arrays` is array-level: it returns row labels and a (samples, rows)
+array in the registry's units. :func:`predictions_frame` turns nominal values and
+tolerance bands into the tidy DataFrame (one row per location and quantity).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from labkit.core.conventions import wrap_deg
+from labkit.core.locations import element_end
+from labkit.core.quantities import quantity
+from labkit.core.solve import Solution
+
+
+@dataclass(frozen=True)
+class RowLabel:
+    """The location, quantity and status of one predicted value."""
+
+    location: str
+    quantity: str
+    status: str = "energized"  # or "de-energized"
+    note: str = ""
+
+
+class _Rows:
+    def __init__(self, n_samples: int) -> None:
+        self.labels: list[RowLabel] = []
+        self.values: list[NDArray] = []
+        self.n = n_samples
+
+    def add(self, location: str, name: str, values: NDArray | float, status: str = "energized",
+            note: str = "") -> None:
+        q = quantity(name)  # every emitted name must be registered
+        arr = np.broadcast_to(np.asarray(values, dtype=float), (self.n,)) * q.scale
+        self.labels.append(RowLabel(location, name, status, note))
+        self.values.append(arr)
+
+
+def _power_rows(rows: _Rows, location: str, v: NDArray, i: NDArray, harmonic: bool) -> None:
+    """v, i: (S, H) phasors at one place (current in the location's reference direction)."""
+    v_rms = np.sqrt(np.sum(np.abs(v) ** 2, axis=1))
+    i_rms = np.sqrt(np.sum(np.abs(i) ** 2, axis=1))
+    s1 = v[:, 0] * np.conj(i[:, 0])
+    p = np.sum((v * np.conj(i)).real, axis=1)
+    s = v_rms * i_rms
+    with np.errstate(invalid="ignore", divide="ignore"):
+        pf = np.where(s > 0, p / s, np.nan)
+        pf1 = np.where(np.abs(s1) > 0, s1.real / np.abs(s1), np.nan)
+    phase = wrap_deg(np.degrees(np.angle(i[:, 0]) - np.angle(v[:, 0])))
+    rows.add(location, "i_rms", i_rms)
+    rows.add(location, "i_angle", wrap_deg(np.degrees(np.angle(i[:, 0]))))
+    rows.add(location, "p", p)
+    rows.add(location, "q1", s1.imag)
+    rows.add(location, "s", s)
+    rows.add(location, "pf", pf)
+    rows.add(location, "phase", phase)
+    if harmonic:
+        i1 = np.abs(i[:, 0])
+        with np.errstate(invalid="ignore", divide="ignore"):
+            rows.add(location, "thd_i", np.sqrt(np.maximum(i_rms**2 - i1**2, 0)) / i1)
+        rows.add(location, "i1_rms", i1)
+        rows.add(location, "p1", s1.real)
+        rows.add(location, "pf1", pf1)
+        rows.add(location, "crest_i", _crest(i))
+
+
+def _crest(x: NDArray) -> NDArray:
+    """Crest factor of a periodic signal from its harmonic phasors (S, H), sampled over one period."""
+    # 256 points per fundamental period resolve harmonics up to the 63rd
+    return np.zeros(x.shape[0]) if x.shape[1] == 0 else _crest_impl(x)
+
+
+def _crest_impl(x: NDArray) -> NDArray:
+    t = np.linspace(0.0, 1.0, 256, endpoint=False)
+    orders = np.asarray(_crest_impl.orders)  # type: ignore[attr-defined]
+    wave = np.sqrt(2) * np.real(x[:, :, None] * np.exp(2j * np.pi * orders[None, :, None] * t[None, None, :])).sum(1)
+    rms = np.sqrt(np.mean(wave**2, axis=1))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.max(np.abs(wave), axis=1) / rms
+
+
+def quantity_arrays(sol: Solution) -> tuple[list[RowLabel], NDArray[np.float64]]:
+    """Every predicted quantity of a solution: labels and values (S, rows), in the registry's units."""
+    net = sol.network
+    bench = net.bench
+    _crest_impl.orders = sol.orders  # type: ignore[attr-defined]
+    harmonic = len(sol.orders) > 1
+    rows = _Rows(sol.n_samples)
+    dead_note = "de-energized: no source connected; capacitance may still hold charge"
+
+    # buses
+    for bus in bench.bus_names:
+        if bus not in net.bus_node:
+            rows.add(bus, "v_rms", 0.0, "de-energized", dead_note)
+            continue
+        node = net.bus_node[bus]
+        v = sol.v[:, :, node]
+        v_rms = np.sqrt(np.sum(np.abs(v) ** 2, axis=1))
+        rows.add(bus, "v_rms", v_rms)
+        rows.add(bus, "v_angle", wrap_deg(np.degrees(np.angle(v[:, 0]))))
+        rows.add(bus, "frequency", sol.island_frequency_hz[:, node])
+        if harmonic:
+            v1 = np.abs(v[:, 0])
+            rows.add(bus, "v1_rms", v1)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                rows.add(bus, "thd_v", np.sqrt(np.maximum(v_rms**2 - v1**2, 0)) / v1)
+            for k, h in enumerate(sol.orders[1:], start=1):
+                rows.add(bus, f"v_h{h}", np.abs(v[:, k]))
+
+    # element ends (current from the bus into the element)
+    end_currents: dict[tuple[str, str], NDArray] = {}
+    for j, e in enumerate(net.elements):
+        if e.owner_table == "sources":
+            continue
+        for bus_name, sign in ((e.bus_a, 1.0), (e.bus_b, -1.0)):
+            if bus_name is None:
+                continue
+            key = (e.owner, bus_name)
+            end_currents[key] = end_currents.get(key, 0) + sign * sol.i_elem[:, :, j]
+    for k, role in enumerate(net.sources):
+        src = bench.source(role.source_id)
+        end_currents[(src.id, src.bus)] = -sol.source_current[:, :, k]
+    end_currents.update(_switch_currents(sol, end_currents))
+
+    for (owner, bus_name), i in end_currents.items():
+        v = sol.v[:, :, net.bus_node[bus_name]]
+        _power_rows(rows, element_end(owner, bus_name), v, i, harmonic)
+
+    # element-level quantities
+    p_end = {lab.location: val for lab, val in zip(rows.labels, rows.values, strict=True) if lab.quantity == "p"}
+    q_end = {lab.location: val for lab, val in zip(rows.labels, rows.values, strict=True) if lab.quantity == "q1"}
+    for br in bench.line_branches:
+        a, b = element_end(br.id, br.from_bus), element_end(br.id, br.to_bus)
+        if a in p_end and b in p_end:
+            rows.add(br.id, "p_loss", p_end[a] + p_end[b])
+            rows.add(br.id, "q_loss", q_end[a] + q_end[b])
+            va = np.sqrt(np.sum(np.abs(sol.v[:, :, net.bus_node[br.from_bus]]) ** 2, 1))
+            vb = np.sqrt(np.sum(np.abs(sol.v[:, :, net.bus_node[br.to_bus]]) ** 2, 1))
+            rows.add(br.id, "v_drop", va - vb)
+    _loading_rows(sol, rows, end_currents)
+    _open_switch_rows(sol, rows)
+    return rows.labels, np.stack(rows.values, axis=1) if rows.values else np.zeros((sol.n_samples, 0))
+
+
+def _switch_currents(sol: Solution, end_currents: dict[tuple[str, str], NDArray]) -> dict[tuple[str, str], NDArray]:
+    """Currents through closed switches from KCL over each group of buses they merge."""
+    net = sol.network
+    out: dict[tuple[str, str], NDArray] = {}
+    by_node: dict[int, list[tuple[str, str, str]]] = {}
+    for sw in net.switch_groups:
+        by_node.setdefault(net.bus_node[sw[1]], []).append(sw)
+    for node, switches in by_node.items():
+        buses = [b for b, n in net.bus_node.items() if n == node]
+        a = np.zeros((len(buses), len(switches)))
+        for k, (_, f, t) in enumerate(switches):
+            a[buses.index(f), k] = 1.0
+            a[buses.index(t), k] = -1.0
+        inj = np.zeros((len(buses), *sol.v.shape[:2]), dtype=complex)
+        for (owner, bus_name), i in end_currents.items():
+            if bus_name in buses and owner not in {s[0] for s in switches}:
+                inj[buses.index(bus_name)] += i
+        # A i_sw = -inj; least squares handles trees exactly (loops of switches: minimum-norm split)
+        pinv = np.linalg.pinv(a)
+        i_sw = np.tensordot(pinv, -inj, axes=(1, 0))
+        for k, (sid, f, t) in enumerate(switches):
+            out[(sid, f)] = i_sw[k]
+            out[(sid, t)] = -i_sw[k]
+    return out
+
+
+def _loading_rows(sol: Solution, rows: _Rows, end_currents: dict[tuple[str, str], NDArray]) -> None:
+    net, bench = sol.network, sol.network.bench
+    for j, e in enumerate(net.elements):
+        if e.owner_table == "line_branches" and e.part.endswith(".series") and e.section:
+            sec = bench.section(e.section)
+            i_rms = np.sqrt(np.sum(np.abs(sol.i_elem[:, :, j]) ** 2, 1))
+            rows.add(e.section, "loading", i_rms / sec.rated_current)
+    for ld in bench.loads:
+        key = (ld.id, ld.bus)
+        if key in end_currents:
+            rows.add(ld.id, "loading", np.sqrt(np.sum(np.abs(end_currents[key]) ** 2, 1)) / ld.rated_current)
+    for sw_id, f, _ in net.switch_groups:
+        sw = bench.switch(sw_id)
+        rows.add(sw_id, "loading", np.sqrt(np.sum(np.abs(end_currents[(sw_id, f)]) ** 2, 1)) / sw.rated_current)
+    for k, role in enumerate(net.sources):
+        src = bench.source(role.source_id)
+        rated_i = src.rating / bench.bench.nominal_voltage
+        rows.add(src.id, "loading", np.sqrt(np.sum(np.abs(sol.source_current[:, :, k]) ** 2, 1)) / rated_i)
+
+
+def _open_switch_rows(sol: Solution, rows: _Rows) -> None:
+    """Slip, voltage difference and beat period across open switches with both sides energized."""
+    net, bench = sol.network, sol.network.bench
+    closed = {s[0] for s in net.switch_groups}
+    for sw in bench.switches:
+        if sw.id in closed or sw.from_bus not in net.bus_node or sw.to_bus not in net.bus_node:
+            continue
+        na, nb = net.bus_node[sw.from_bus], net.bus_node[sw.to_bus]
+        if na == nb:
+            continue
+        # from_bus is the incoming side of a synchronizing switch (differences: incoming minus running)
+        slip = sol.island_frequency_hz[:, na] - sol.island_frequency_hz[:, nb]
+        va, vb = np.abs(sol.v[:, 0, na]), np.abs(sol.v[:, 0, nb])
+        rows.add(sw.id, "slip", slip)
+        with np.errstate(divide="ignore"):
+            rows.add(sw.id, "beat_period", np.where(slip != 0, 1.0 / np.abs(slip), np.inf))
+        rows.add(sw.id, "dv_sync", (va - vb) / vb)
+        if np.all(slip == 0):
+            rows.add(sw.id, "v_across", np.abs(sol.v[:, 0, na] - sol.v[:, 0, nb]))
+
+
+__all__ = ["RowLabel", "quantity_arrays"]

@@ -1,0 +1,386 @@
+"""Solve a compiled network: source roles, the nonlinear load, harmonics; stacked over samples.
+
+Source roles (assigned in :func:`labkit.core.network.compile_network`):
+
+``slack``             the mains reference: fixed EMF (tap x mains), angle 0, its frequency
+``island_frequency``  an alternator set alone in its island: angle 0; with droop the island
+                      frequency follows ``f = f_set - droop * f_rated * P / S_rated``; isochronous
+                      holds ``f = f_set``
+``droop``             a set in parallel: EMF magnitude from its field (and speed), angle such
+                      that the power at its EMF equals its droop power at the common frequency
+``isochronous``       the one isochronous set of an island of droop sets: fixes the frequency
+``given``             EMF magnitude and angle fixed (given-phasor mode; also the fallback when
+                      the sharing is not determined, with a warning)
+
+The droop power of a set is ``P = S_rated * (f_set - f) / (droop * f_rated)``, limited by its
+torque limit (``P_max = T_max * 2*pi*f / pole_pairs``). The unknowns (island frequencies and
+set angles) are found by Newton's method with a finite-difference Jacobian around the linear
+solve, for all samples of a stack at once.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from numpy.typing import NDArray
+
+from labkit.core.bench import AlternatorSet, NonlinearLoad
+from labkit.core.network import NEUTRAL, Network, NetworkError, assemble, compile_network, element_admittances
+
+MAX_NEWTON = 30
+NEWTON_TOL_W = 1e-9  # relative to the set's rating
+
+
+@dataclass
+class Solution:
+    """Node voltages and element currents of a solved network, stacked over samples (axis 0).
+
+    Harmonic arrays have an axis for the orders in ``orders`` (the fundamental is order 1,
+    always first).
+    """
+
+    network: Network
+    orders: list[int]
+    v: NDArray[np.complex128]  # (S, H, N) node voltage phasors, V RMS
+    i_elem: NDArray[np.complex128]  # (S, H, E) element currents from node_a to node_b, A RMS
+    emf: NDArray[np.complex128]  # (S, n_sources) source EMF phasors at the fundamental
+    island_frequency_hz: NDArray[np.float64]  # (S, N) frequency of each node's island
+    source_current: NDArray[np.complex128]  # (S, H, n_sources) current out of each source into its bus
+    converged: bool = True
+    n_iter: int = 0
+    warnings: list[str] = field(default_factory=list)
+    failed: NDArray[np.bool_] | None = None  # (S,) members whose matrix was singular
+
+    @property
+    def n_samples(self) -> int:
+        """Number of stacked samples."""
+        return self.v.shape[0]
+
+
+# -- linear algebra ---------------------------------------------------------------------------------
+def stacked_solve(y: NDArray[np.complex128], i: NDArray[np.complex128]) -> tuple[NDArray, NDArray[np.bool_]]:
+    """Solve ``y @ v = i`` for stacked matrices; singular members give NaN and are flagged."""
+    try:
+        return np.linalg.solve(y, i[..., None])[..., 0], np.zeros(y.shape[:-2], dtype=bool)
+    except np.linalg.LinAlgError:
+        flat_y = y.reshape(-1, *y.shape[-2:])
+        flat_i = i.reshape(-1, i.shape[-1])
+        out = np.full(flat_i.shape, np.nan + 0j)
+        bad = np.zeros(flat_i.shape[0], dtype=bool)
+        for k in range(flat_y.shape[0]):  # only reached when some member is singular
+            try:
+                out[k] = np.linalg.solve(flat_y[k], flat_i[k])
+            except np.linalg.LinAlgError:
+                bad[k] = True
+        return out.reshape(i.shape), bad.reshape(y.shape[:-2])
+
+
+@dataclass
+class Arrays:
+    """The per-element arrays of a network, with tolerance factors applied (S samples)."""
+
+    kind: NDArray
+    a: NDArray
+    b: NDArray
+    r: NDArray  # (S, E)
+    l: NDArray  # noqa: E741
+    c: NDArray
+    y_fixed: NDArray
+
+
+def element_arrays(net: Network, factors: NDArray[np.float64] | None = None) -> Arrays:
+    """Element arrays, with per-sample parameter factors ``(S, n_params)`` applied (default: nominal)."""
+    ea = net.element_arrays()
+    n_p = len(net.parameters)
+    f = np.ones((1, n_p)) if factors is None else np.asarray(factors, dtype=float)
+    s = f.shape[0]
+    pad = np.concatenate([f, np.ones((s, 1))], axis=1)  # index -1 -> factor 1
+
+    def scaled(values: NDArray, idx: NDArray) -> NDArray:
+        return values[None, :] * pad[:, idx]
+
+    y_fixed = ea["y_fixed"][None, :] * pad[:, ea["fixed_param"]]
+    return Arrays(ea["kind"], ea["a"], ea["b"], scaled(ea["r"], ea["r_param"]), scaled(ea["l"], ea["l_param"]),
+                  scaled(ea["c"], ea["c_param"]), y_fixed)
+
+
+def _source_emf_magnitude(net: Network, f_node: NDArray[np.float64]) -> NDArray[np.float64]:
+    """EMF magnitudes (S, n_src): alternator EMF proportional to speed, the slack's fixed."""
+    out = np.empty((f_node.shape[0], len(net.sources)))
+    for k, role in enumerate(net.sources):
+        src = net.bench.source(role.source_id)
+        if isinstance(src, AlternatorSet) and net.state.setting(src.id).emf_v is None:
+            out[:, k] = role.emf_v * f_node[:, role.node] / net.frequency_hz
+        else:
+            out[:, k] = role.emf_v
+    return out
+
+
+def _droop_power(net: Network, f_src: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Droop power (S, n_src) of each set at its frequency, torque-limited; NaN for non-sets."""
+    out = np.full(f_src.shape, np.nan)
+    for k, role in enumerate(net.sources):
+        src = net.bench.source(role.source_id)
+        if not isinstance(src, AlternatorSet):
+            continue
+        sc = src.speed_control
+        setpoint = net.state.setting(src.id).setpoint_hz or sc.setpoint_default
+        f = f_src[:, k]
+        if sc.mode == "droop" and sc.droop > 0:
+            p = src.rating * (setpoint - f) / (sc.droop * src.rated_frequency)
+        else:
+            p = np.full_like(f, np.nan)
+        p_max = sc.torque_limit * 2 * np.pi * f / src.pole_pairs
+        out[:, k] = np.clip(p, -p_max, p_max)
+    return out
+
+
+def _linear(net: Network, arr: Arrays, f_node: NDArray, emf: NDArray[np.complex128],
+            extra_y: NDArray[np.complex128] | None = None) -> tuple[NDArray, NDArray, NDArray[np.bool_]]:
+    """One stacked linear solve at the fundamental; returns (v (S,N), y_elem (S,E), failed (S,))."""
+    node_of_elem = np.where(arr.a >= 0, arr.a, arr.b)
+    omega = 2 * np.pi * f_node[:, node_of_elem]
+    y_el = element_admittances(arr.kind, arr.r, arr.l, arr.c, arr.y_fixed, omega)
+    if extra_y is not None:
+        y_el = y_el + extra_y
+    ymat = assemble(net.n_nodes, arr.a, arr.b, y_el)
+    inj = np.zeros((emf.shape[0], net.n_nodes), dtype=complex)
+    for k, role in enumerate(net.sources):
+        inj[:, role.node] += emf[:, k] * y_el[:, role.element_index]
+    v, failed = stacked_solve(ymat, inj)
+    return v, y_el, failed
+
+
+def _currents(arr_a: NDArray, arr_b: NDArray, v: NDArray, y_el: NDArray) -> NDArray:
+    va = np.where(arr_a >= 0, v[..., np.maximum(arr_a, 0)], 0)
+    vb = np.where(arr_b >= 0, v[..., np.maximum(arr_b, 0)], 0)
+    return (va - vb) * y_el
+
+
+def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, harmonics: bool = True,
+                  given_angles_deg: dict[str, float] | None = None) -> Solution:
+    """Solve a compiled network for stacked parameter samples.
+
+    Parameters
+    ----------
+    net
+        From :func:`~labkit.core.network.compile_network`.
+    factors
+        (S, n_params) multiplicative factors of ``net.parameters`` (tolerance samples);
+        ``None`` solves the nominal network once.
+    harmonics
+        Also solve the harmonic orders injected by nonlinear loads.
+    given_angles_deg
+        Given-phasor mode: every source keeps its EMF magnitude and takes this angle
+        (degrees); no role is solved.
+    """
+    arr = element_arrays(net, factors)
+    s = arr.r.shape[0]
+    n_src = len(net.sources)
+    islands = _node_islands(net)
+    f_node = np.full((s, net.n_nodes), net.frequency_hz)
+    warnings = list(net.warnings)
+
+    # unknowns: free island frequencies, then droop angles
+    free_islands: list[int] = []
+    angle_unknowns: list[int] = []
+    fixed_f: dict[int, float] = {}
+    if given_angles_deg is None:
+        for isl_id, isl in enumerate(islands):
+            roles = [(k, r) for k, r in enumerate(net.sources) if r.node in isl]
+            kinds = {r.role for _, r in roles}
+            if "slack" in kinds:
+                angle_unknowns += [k for k, r in roles if r.role == "droop"]
+                continue
+            if not roles:
+                continue
+            iso = [r for _, r in roles if r.role == "isochronous"]
+            solo = [r for _, r in roles if r.role == "island_frequency"]
+            leader = (iso or solo or [roles[0][1]])[0]
+            src = net.bench.source(leader.source_id)
+            setpoint = net.state.setting(src.id).setpoint_hz or src.speed_control.setpoint_default  # type: ignore[union-attr]
+            if leader.role == "isochronous" or src.speed_control.mode == "isochronous":  # type: ignore[union-attr]
+                fixed_f[isl_id] = setpoint
+            else:
+                free_islands.append(isl_id)
+            for k, r in roles:
+                if r.role == "droop" and r is not leader:
+                    angle_unknowns.append(k)
+        for isl_id, fval in fixed_f.items():
+            f_node[:, sorted(islands[isl_id])] = fval
+    angles = np.zeros((s, n_src))
+    if given_angles_deg is not None:
+        for k, r in enumerate(net.sources):
+            angles[:, k] = given_angles_deg.get(r.source_id, 0.0)
+    # initial island frequencies: the leader's setpoint
+    for isl_id in free_islands:
+        roles = [r for r in net.sources if r.node in islands[isl_id]]
+        src = net.bench.source(roles[0].source_id)
+        f_node[:, sorted(islands[isl_id])] = net.state.setting(src.id).setpoint_hz or src.speed_control.setpoint_default  # type: ignore[union-attr]
+
+    # equations: droop sets (incl. a droop leader of a free island) match power
+    eq_sources = [k for k, r in enumerate(net.sources)
+                  if r.role in ("droop", "island_frequency")
+                  and net.bench.source(r.source_id).speed_control.mode == "droop"]  # type: ignore[union-attr]
+    eq_sources = [k for k in eq_sources if any(net.sources[k].node in islands[i] for i in free_islands)
+                  or k in angle_unknowns]
+    n_x = len(free_islands) + len(angle_unknowns)
+    node_island = np.zeros(net.n_nodes, dtype=int)
+    for isl_id, isl in enumerate(islands):
+        node_island[sorted(isl)] = isl_id
+    src_nodes = np.array([r.node for r in net.sources], dtype=int)
+    y_nl = np.zeros((s, len(net.elements)), dtype=complex)
+    nl_elems = [(j, e) for j, e in enumerate(net.elements) if e.owner_table == "loads" and e.part == "fundamental"]
+
+    def evaluate(x: NDArray, y_extra: NDArray) -> tuple[NDArray, NDArray, NDArray, NDArray, NDArray]:
+        fn = f_node.copy() if x.shape[0] == s else np.repeat(f_node, x.shape[0] // s, axis=0)
+        ang = angles.copy() if x.shape[0] == s else np.repeat(angles, x.shape[0] // s, axis=0)
+        for m, isl_id in enumerate(free_islands):
+            fn[:, sorted(islands[isl_id])] = x[:, m : m + 1]
+        for m, k in enumerate(angle_unknowns):
+            ang[:, k] = x[:, len(free_islands) + m]
+        reps = x.shape[0] // s
+        a2 = arr if reps == 1 else Arrays(arr.kind, arr.a, arr.b, np.repeat(arr.r, reps, 0), np.repeat(arr.l, reps, 0),
+                                          np.repeat(arr.c, reps, 0), np.repeat(arr.y_fixed, reps, 0))
+        emf = _source_emf_magnitude(net, fn) * np.exp(1j * np.radians(ang))
+        ye = y_extra if reps == 1 else np.repeat(y_extra, reps, 0)
+        v, y_el, failed = _linear(net, a2, fn, emf, ye)
+        i_src = (emf - v[:, src_nodes]) * y_el[:, [r.element_index for r in net.sources]] if n_src else emf
+        p_emf = (emf * np.conj(i_src)).real
+        return v, y_el, fn, emf, p_emf if n_src else np.zeros((x.shape[0], 0)), failed  # type: ignore[return-value]
+
+    def residual(x: NDArray, y_extra: NDArray) -> NDArray:
+        _, _, fn, _, p_emf, _ = evaluate(x, y_extra)
+        f_src = fn[:, src_nodes]
+        p_set = _droop_power(net, f_src)
+        scale = np.array([net.bench.source(r.source_id).rating for r in net.sources])
+        return ((p_emf - p_set) / scale)[:, eq_sources]
+
+    x = np.zeros((s, n_x))
+    for m, isl_id in enumerate(free_islands):
+        x[:, m] = f_node[:, sorted(islands[isl_id])[0]]
+    converged, n_iter = True, 0
+    for _outer in range(40 if nl_elems else 1):
+        if n_x:
+            converged = False
+            for n_iter in range(1, MAX_NEWTON + 1):  # noqa: B007
+                r0 = residual(x, y_nl)
+                if np.all(np.abs(r0) < NEWTON_TOL_W):
+                    converged = True
+                    break
+                steps = np.where(np.arange(n_x) < len(free_islands), 1e-6, 1e-6)
+                xp = np.repeat(x[:, None, :], n_x, axis=1) + np.eye(n_x)[None] * steps
+                rp = residual(xp.reshape(s * n_x, n_x), y_nl).reshape(s, n_x, n_x)
+                jac = np.swapaxes((rp - r0[:, None, :]) / steps[None, :, None], 1, 2)
+                try:
+                    dx = np.linalg.solve(jac, -r0[..., None])[..., 0]
+                except np.linalg.LinAlgError as exc:
+                    msg = "the source-role iteration met a singular Jacobian (sets that cannot share load)"
+                    raise NetworkError(msg) from exc
+                # keep frequency steps modest for robustness
+                dx[:, : len(free_islands)] = np.clip(dx[:, : len(free_islands)], -2.0, 2.0)
+                dx[:, len(free_islands):] = np.clip(dx[:, len(free_islands):], -30.0, 30.0)
+                x = x + dx
+        if not nl_elems:
+            break
+        v, *_ = evaluate(x, y_nl)
+        y_new = np.zeros_like(y_nl)
+        for j, e in nl_elems:
+            ld = net.bench.load(e.owner)
+            assert isinstance(ld, NonlinearLoad)
+            # constant fundamental power: Y = conj(S1) / |V|^2, the compiled Y is at rated voltage
+            ratio = ld.rated_voltage**2 / np.maximum(np.abs(v[:, e.node_a]) ** 2, 1e-12)
+            y_new[:, j] = arr.y_fixed[:, j] * (ratio - 1.0)
+        change = np.max(np.abs(y_new - y_nl)) if y_nl.size else 0.0
+        y_nl = y_new
+        if change < 1e-12:
+            break
+    if not converged:
+        warnings.append(f"source-role iteration did not converge in {MAX_NEWTON} steps")
+    v, y_el, fn, emf, _, failed = evaluate(x, y_nl)
+    i_el = _currents(arr.a, arr.b, v, y_el)
+    i_src = (emf - v[:, src_nodes]) * y_el[:, [r.element_index for r in net.sources]] if n_src else np.zeros((s, 0))
+
+    orders = [1]
+    v_all, i_all, isrc_all = [v], [i_el], [i_src]
+    if harmonics and net.nonlinear_loads:
+        h_orders, v_h, i_h, isrc_h = _solve_harmonics(net, v, i_el, fn, factors)
+        orders += h_orders
+        v_all += v_h
+        i_all += i_h
+        isrc_all += isrc_h
+    if np.any(failed):
+        warnings.append(f"{int(np.sum(failed))} stacked member(s) had a singular admittance matrix")
+    return Solution(net, orders, np.stack(v_all, 1), np.stack(i_all, 1), emf, fn, np.stack(isrc_all, 1),
+                    converged, n_iter, warnings, failed)
+
+
+def _node_islands(net: Network) -> list[set[int]]:
+    from labkit.core.network import _islands
+
+    return _islands(net)
+
+
+def _solve_harmonics(net: Network, v1: NDArray, i1: NDArray, f_node: NDArray,
+                     factors: NDArray | None) -> tuple[list[int], list, list, list]:
+    """Harmonic voltages and currents from the nonlinear loads' current injections."""
+    loads = [net.bench.load(lid) for lid in net.nonlinear_loads]
+    orders = sorted({h.order for ld in loads if isinstance(ld, NonlinearLoad) for h in ld.harmonics})
+    out_v, out_i, out_src = [], [], []
+    f0 = float(np.mean(f_node))
+    for h in orders:
+        net_h = compile_network(net.bench, net.state, frequency_hz=f0, harmonic=h)
+        arr = element_arrays(net_h, factors)
+        s = v1.shape[0]
+        omega = np.full((s, len(net_h.elements)), 2 * np.pi * f0 * h)
+        y_el = element_admittances(arr.kind, arr.r, arr.l, arr.c, arr.y_fixed, omega)
+        # the nonlinear load is a current source at harmonics, not an admittance
+        for j, e in enumerate(net_h.elements):
+            if e.owner_table == "loads" and e.owner in net.nonlinear_loads:
+                y_el[:, j] = 0
+        ymat = assemble(net_h.n_nodes, arr.a, arr.b, y_el)
+        inj = np.zeros((s, net_h.n_nodes), dtype=complex)
+        for ld in loads:
+            assert isinstance(ld, NonlinearLoad)
+            spec = next((x for x in ld.harmonics if x.order == h), None)
+            if spec is None:
+                continue
+            node1 = net.bus_node[ld.bus]
+            j1 = next(j for j, e in enumerate(net.elements) if e.owner == ld.id and e.part == "fundamental")
+            i_fund = np.abs(i1[:, j1])
+            theta = np.angle(v1[:, node1])
+            i_h = spec.magnitude * i_fund * np.exp(1j * (np.radians(spec.angle) + h * theta))
+            inj[:, net_h.bus_node[ld.bus]] -= i_h
+        v_h, _ = stacked_solve(ymat, inj)
+        i_el_h = _currents(arr.a, arr.b, v_h, y_el)
+        # nonlinear load elements carry their injected harmonic current
+        for j, e in enumerate(net_h.elements):
+            if e.owner_table == "loads" and e.owner in net.nonlinear_loads:
+                i_el_h[:, j] = -inj[:, e.node_a]
+        if net_h.n_nodes != net.n_nodes or len(net_h.elements) != len(net.elements):
+            msg = "harmonic network differs from the fundamental network"
+            raise NetworkError(msg)
+        src_nodes = [r.node for r in net.sources]
+        i_src_h = -v_h[:, src_nodes] * y_el[:, [r.element_index for r in net.sources]]
+        out_v.append(v_h)
+        out_i.append(i_el_h)
+        out_src.append(i_src_h)
+    return orders, out_v, out_i, out_src
+
+
+def sample_factors(net: Network, n_samples: int, seed: int) -> NDArray[np.float64]:
+    """Uniform tolerance factors (n_samples, n_params) in [1 - tol, 1 + tol], seeded."""
+    rng = np.random.default_rng(seed)
+    tol = np.array([p[3] for p in net.parameters])
+    return 1.0 + rng.uniform(-1.0, 1.0, size=(n_samples, len(tol))) * tol[None, :]
+
+
+def element_node_current_into(sol: Solution, element_index: int, node: int) -> NDArray[np.complex128]:
+    """Current (S, H) flowing from ``node`` into an element."""
+    e = sol.network.elements[element_index]
+    i = sol.i_elem[:, :, element_index]
+    return i if e.node_a == node else -i if e.node_b == node else np.zeros_like(i)
+
+
+__all__ = ["NEUTRAL", "Solution", "sample_factors", "solve_network", "stacked_solve"]
