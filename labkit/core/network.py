@@ -140,24 +140,26 @@ def element_admittances(kind: NDArray, r: NDArray, l: NDArray, c: NDArray, y_fix
 def assemble(n_nodes: int, a: NDArray, b: NDArray, y: NDArray) -> NDArray[np.complex128]:
     """Nodal admittance matrices for stacked element admittances ``y`` (..., E) -> (..., N, N).
 
-    ``a`` and ``b`` are the node indices of each element (``NEUTRAL`` = -1 for the neutral).
+    ``a`` and ``b`` are the node indices of each element (``NEUTRAL`` = -1 for the
+    neutral), shape (E,) shared by the stack or the stack's own shape (..., E).
     """
     y = np.asarray(y, dtype=complex)
     lead = y.shape[:-1]
     batch = int(np.prod(lead)) if lead else 1
-    yf = y.reshape(batch, -1)
+    n_el = y.shape[-1]
+    yf = y.reshape(batch, n_el)
+    af = np.broadcast_to(a, (*lead, n_el)).reshape(batch, n_el)
+    bf = np.broadcast_to(b, (*lead, n_el)).reshape(batch, n_el)
     n2 = n_nodes * n_nodes
-    ga, gb = a >= 0, b >= 0
+    off = (np.arange(batch) * n2)[:, None]
+    ga, gb = af >= 0, bf >= 0
     both = ga & gb
-    idx_parts = [a[ga] * (n_nodes + 1), b[gb] * (n_nodes + 1), a[both] * n_nodes + b[both], b[both] * n_nodes + a[both]]
-    w_parts = [yf[:, ga], yf[:, gb], -yf[:, both], -yf[:, both]]
-    idx = np.concatenate(idx_parts)
-    weights = np.concatenate(w_parts, axis=1)
-    offsets = (np.arange(batch) * n2)[:, None]
-    flat_idx = (idx[None, :] + offsets).ravel()
+    idx = np.concatenate([(af * (n_nodes + 1) + off)[ga], (bf * (n_nodes + 1) + off)[gb],
+                          (af * n_nodes + bf + off)[both], (bf * n_nodes + af + off)[both]])
+    weights = np.concatenate([yf[ga], yf[gb], -yf[both], -yf[both]])
     total = batch * n2
-    re = np.bincount(flat_idx, weights=weights.real.ravel(), minlength=total)
-    im = np.bincount(flat_idx, weights=weights.imag.ravel(), minlength=total)
+    re = np.bincount(idx, weights=weights.real, minlength=total)
+    im = np.bincount(idx, weights=weights.imag, minlength=total)
     return (re + 1j * im).reshape(*lead, n_nodes, n_nodes)
 
 

@@ -166,6 +166,9 @@ def _switch_currents(sol: Solution, end_currents: dict[tuple[str, str], NDArray]
             if bus_name in buses and owner not in {s[0] for s in switches}:
                 inj[buses.index(bus_name)] += i
         # A i_sw = -inj; least squares handles trees exactly (loops of switches: minimum-norm split)
+        if np.linalg.matrix_rank(a) < len(switches):
+            sol.warnings.append("closed switches form a loop (" + ", ".join(s[0] for s in switches)
+                                + "): how the current divides between them is not determined; shown evenly split")
         pinv = np.linalg.pinv(a)
         i_sw = np.tensordot(pinv, -inj, axes=(1, 0))
         for k, (sid, f, t) in enumerate(switches):

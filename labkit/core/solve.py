@@ -149,7 +149,26 @@ def _linear(net: Network, arr: Arrays, f_node: NDArray, emf: NDArray[np.complex1
     for k, role in enumerate(net.sources):
         inj[:, role.node] += emf[:, k] * y_el[:, role.element_index]
     v, failed = stacked_solve(ymat, inj)
+    if ymat.shape[0] == 1 and ymat.shape[-1] > 1:
+        _check_conditioning(net, ymat[0], y_el[0])
     return v, y_el, failed
+
+
+ILL_CONDITIONED = 1e13
+
+
+def _check_conditioning(net: Network, ymat: NDArray, y_el: NDArray) -> None:
+    """Refuse a nominal network whose admittance matrix is numerically singular, naming the extremes."""
+    cond = np.linalg.cond(ymat)
+    if np.isfinite(cond) and cond < ILL_CONDITIONED:
+        return
+    mags = np.abs(y_el)
+    order = np.argsort(mags)
+    weakest, strongest = net.elements[order[0]], net.elements[order[-1]]
+    msg = (f"the network is ill-conditioned (condition number {cond:.3g}): admittances range from "
+           f"{mags[order[0]]:.3g} S ({weakest.owner} {weakest.part}) to {mags[order[-1]]:.3g} S "
+           f"({strongest.owner} {strongest.part}); check those values")
+    raise NetworkError(msg)
 
 
 def _currents(arr_a: NDArray, arr_b: NDArray, v: NDArray, y_el: NDArray) -> NDArray:

@@ -1,0 +1,214 @@
+"""Physical properties of the network solution: power balance, droop sharing, roles, islands, stacks.
+
+Outside references: conservation of complex power (Tellegen's theorem, textbook circuit
+theory); the droop steady-state relation of field-reference §5.1 (Saadat, *Power System
+Analysis*, ch. 12: each unit picks up ΔP_i = -Δω / R_i).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from labkit.core.bench import AlternatorSet, Bench
+from labkit.core.network import NetworkError, compile_network
+from labkit.core.predict import predict_state
+from labkit.core.results import quantity_arrays
+from labkit.core.solve import sample_factors, solve_network, stacked_solve
+from labkit.core.state import BenchState, SourceSetting, states_after_steps
+from labkit.files.loader import load_bench, load_template
+from tests.network_cases import random_bench
+
+ROOT = Path(__file__).resolve().parent.parent / "session_templates"
+
+
+@pytest.fixture
+def demo() -> Bench:
+    return load_bench(ROOT / "demo-bench.toml").bench
+
+
+def _balance(sol) -> tuple[np.ndarray, np.ndarray]:
+    """(power delivered by the EMFs, power absorbed by every element incl. internal impedances), per sample."""
+    net = sol.network
+    delivered = np.sum((sol.emf * np.conj(sol.source_current[:, 0, :])), axis=1)
+    absorbed = np.zeros(sol.n_samples, dtype=complex)
+    for j, e in enumerate(net.elements):
+        va = sol.v[:, 0, e.node_a] if e.node_a >= 0 else 0
+        vb = sol.v[:, 0, e.node_b] if e.node_b >= 0 else 0
+        if e.owner_table == "sources":
+            k = next(i for i, r in enumerate(net.sources) if r.element_index == j)
+            i_s = sol.source_current[:, 0, k]
+            z = e.r_ohm + 1j * 2 * np.pi * sol.island_frequency_hz[:, e.node_a] * e.l_h
+            absorbed += np.abs(i_s) ** 2 * z
+        else:
+            absorbed += (va - vb) * np.conj(sol.i_elem[:, 0, j])
+    return delivered, absorbed
+
+
+@pytest.mark.parametrize("seed", range(12))
+def test_power_balance_random_networks(seed: int) -> None:
+    bench, state, angles = random_bench(seed)
+    sol = solve_network(compile_network(bench, state), given_angles_deg=angles, harmonics=False)
+    delivered, absorbed = _balance(sol)
+    np.testing.assert_allclose(absorbed, delivered, rtol=1e-9, atol=1e-9 * np.max(np.abs(delivered)))
+
+
+def test_power_balance_every_demo_step_with_roles(demo: Bench) -> None:
+    for name in ("lab1-line-and-loads", "lab2-synchronize"):
+        template = load_template(ROOT / f"{name}.toml", demo).template
+        for state in states_after_steps(demo, template):
+            sol = solve_network(compile_network(demo, state), harmonics=False)
+            delivered, absorbed = _balance(sol)
+            np.testing.assert_allclose(absorbed, delivered, rtol=1e-9, atol=1e-9)
+
+
+def _island_of_two_sets(demo: Bench, setpoints: tuple[float, float]) -> BenchState:
+    return BenchState(started=frozenset({"G1", "G2"}),
+                      settings=(("G1", SourceSetting(setpoint_hz=setpoints[0])),
+                                ("G2", SourceSetting(setpoint_hz=setpoints[1]))),
+                      switches=(("SYNC1", True), ("SYNC2", True)), lines=(("L12", "short"), ("L13", "on")),
+                      loads=(("LB", 3), ("RB", 4)))
+
+
+@pytest.mark.parametrize("setpoints", [(60.0, 60.0), (60.1, 59.95), (60.3, 60.2)])
+def test_droop_sharing_matches_steady_state_formula(demo: Bench, setpoints: tuple[float, float]) -> None:
+    # field-reference §5.1: unit i delivers S_i (f_set,i - f) / (R_i f_rated); the common f follows from the total
+    sol = solve_network(compile_network(demo, _island_of_two_sets(demo, setpoints)), harmonics=False)
+    assert sol.converged
+    p_emf = (sol.emf[0] * np.conj(sol.source_current[0, 0])).real
+    sets = [demo.source(r.source_id) for r in sol.network.sources]
+    assert all(isinstance(s, AlternatorSet) for s in sets)
+    gains = np.array([s.rating / (s.speed_control.droop * s.rated_frequency) for s in sets])  # W per Hz
+    total = p_emf.sum()
+    f_formula = (np.sum(gains * np.array(setpoints)) - total) / gains.sum()
+    f = sol.island_frequency_hz[0, 0]
+    assert f == pytest.approx(f_formula, abs=1e-9)
+    np.testing.assert_allclose(p_emf, gains * (np.array(setpoints) - f), rtol=1e-8)
+
+
+def test_droop_set_against_mains_takes_its_droop_power(demo: Bench) -> None:
+    template = load_template(ROOT / "lab2-synchronize.toml", demo).template
+    state = states_after_steps(demo, template)[template.index_of("sync-g1")]
+    sol = solve_network(compile_network(demo, state), harmonics=False)
+    k = [r.source_id for r in sol.network.sources].index("G1")
+    p = (sol.emf[0, k] * np.conj(sol.source_current[0, 0, k])).real
+    g1 = demo.source("G1")
+    assert isinstance(g1, AlternatorSet)
+    # 60.1 Hz setpoint against a 60 Hz reference: S (0.1 Hz) / (0.05 x 60 Hz) (common practice droop definition)
+    assert p == pytest.approx(g1.rating * 0.1 / (0.05 * 60.0), rel=1e-8)
+
+
+def _raw_demo() -> dict:
+    import tomllib
+
+    return tomllib.loads((ROOT / "demo-bench.toml").read_text())
+
+
+def test_two_isochronous_sets_give_a_warning_not_a_number() -> None:
+    data = _raw_demo()
+    for src in data["sources"]:
+        if src["kind"] == "alternator_set":
+            src["speed_control"]["mode"] = "isochronous"
+    iso = Bench.model_validate(data)
+    net = compile_network(iso, _island_of_two_sets(iso, (60.0, 60.0)))
+    assert any("isochronous" in w and "not determined" in w for w in net.warnings)
+    assert {r.role for r in net.sources} == {"given"}
+
+
+def test_isochronous_set_against_mains_warns() -> None:
+    data = _raw_demo()
+    data["sources"][1]["speed_control"]["mode"] = "isochronous"
+    iso = Bench.model_validate(data)
+    state = BenchState(started=frozenset({"REF", "G1"}), switches=(("SWR", True), ("SYNC1", True)))
+    net = compile_network(iso, state)
+    assert any("fights the mains" in w for w in net.warnings)
+
+
+def test_isochronous_set_alone_holds_its_setpoint() -> None:
+    data = _raw_demo()
+    data["sources"][1]["speed_control"]["mode"] = "isochronous"
+    iso = Bench.model_validate(data)
+    state = BenchState(started=frozenset({"G1"}), settings=(("G1", SourceSetting(setpoint_hz=59.8)),),
+                       switches=(("SYNC1", True),), lines=(("L12", "short"),), loads=(("RB", 3),))
+    sol = solve_network(compile_network(iso, state), harmonics=False)
+    assert np.all(sol.island_frequency_hz == 59.8)
+
+
+def test_part_without_source_is_de_energized_never_a_crash(demo: Bench) -> None:
+    state = BenchState(started=frozenset({"REF"}), switches=(("SWR", True),), lines=(("L12", "short"),),
+                       loads=(("CB", 3), ("RB", 2)))
+    pred = predict_state(demo, state, n_samples=50)
+    rows = {(lab.location, lab.quantity): (lab, pred.nominal[k]) for k, lab in enumerate(pred.labels)}
+    lab, value = rows[("B3", "v_rms")]
+    assert lab.status == "de-energized" and value == 0.0
+    assert "charge" in lab.note  # never labelled safe: capacitance holds charge
+    assert ("CB@B3", "i_rms") not in rows
+
+
+def test_zero_impedance_section_is_a_clear_error_naming_it() -> None:
+    data = _raw_demo()
+    data["line_sections"][0].update(r="0 ohm", l="0 mH")
+    bad = Bench.model_validate(data)
+    state = BenchState(started=frozenset({"REF"}), switches=(("SWR", True),), lines=(("L12", "short"),))
+    with pytest.raises(NetworkError, match='"S1".*zero series impedance'):
+        compile_network(bad, state)
+
+
+def test_singular_member_of_a_stack_is_handled_alone() -> None:
+    rng = np.random.default_rng(3)
+    y = rng.normal(size=(6, 4, 4)) + 1j * rng.normal(size=(6, 4, 4))
+    y[2] = 0.0  # an island with nothing to fix its voltage
+    y[4, :, 1] = 0.0  # a node connected to nothing
+    y[4, 1, :] = 0.0
+    i = rng.normal(size=(6, 4)) + 0j
+    v, failed = stacked_solve(y, i)
+    assert failed.tolist() == [False, False, True, False, True, False]
+    good = ~failed
+    np.testing.assert_allclose(np.einsum("sij,sj->si", y[good], v[good]), i[good], atol=1e-10)
+    assert np.all(np.isnan(v[failed]))
+
+
+def test_tolerance_band_contains_nominal_and_is_reproducible(demo: Bench) -> None:
+    template = load_template(ROOT / "lab1-line-and-loads.toml", demo).template
+    state = states_after_steps(demo, template)[4]
+    a = predict_state(demo, state, n_samples=400, seed=7)
+    b = predict_state(demo, state, n_samples=400, seed=7)
+    np.testing.assert_array_equal(a.band_low, b.band_low)
+    assert np.all(a.band_low <= a.nominal + 1e-12) and np.all(a.nominal <= a.band_high + 1e-12)
+    k = next(k for k, lab in enumerate(a.labels) if (lab.location, lab.quantity) == ("LB@B2", "i_rms"))
+    assert a.band_high[k] - a.band_low[k] > 0.01 * a.nominal[k]  # a 5 % component tolerance shows
+
+
+def test_monte_carlo_stack_equals_one_by_one(demo: Bench) -> None:
+    template = load_template(ROOT / "lab2-synchronize.toml", demo).template
+    state = states_after_steps(demo, template)[-1]
+    net = compile_network(demo, state)
+    factors = sample_factors(net, 5, seed=11)
+    stacked = solve_network(net, factors, harmonics=False)
+    for k in range(5):
+        single = solve_network(net, factors[k : k + 1], harmonics=False)
+        np.testing.assert_allclose(stacked.v[k], single.v[0], rtol=1e-9, atol=1e-9)
+
+
+def test_every_emitted_quantity_is_registered(demo: Bench) -> None:
+    from labkit.core.quantities import is_registered
+
+    template = load_template(ROOT / "lab2-synchronize.toml", demo).template
+    for state in states_after_steps(demo, template):
+        labels, _ = quantity_arrays(solve_network(compile_network(demo, state)))
+        assert all(is_registered(lab.quantity) for lab in labels)
+
+
+def test_ill_conditioned_network_is_a_clear_error_naming_the_elements() -> None:
+    data = _raw_demo()
+    # a near-short line fed through a source impedance of a gigaohm: nothing sensible holds the voltages
+    data["line_sections"][0].update(r="1 uohm", l="1 nH", c="0 uF")
+    data["sources"][0].update(r_internal="1 Gohm", l_internal="0 mH")
+    data["loads"][0]["steps"][1]["r"] = "1 Gohm"
+    bad = Bench.model_validate(data)
+    state = BenchState(started=frozenset({"REF"}), switches=(("SWR", True),), lines=(("L12", "short"),),
+                       loads=(("RB", 2),))
+    with pytest.raises(NetworkError, match=r"ill-conditioned.*S1"):
+        solve_network(compile_network(bad, state), harmonics=False)
