@@ -212,3 +212,36 @@ def test_ill_conditioned_network_is_a_clear_error_naming_the_elements() -> None:
                        loads=(("RB", 2),))
     with pytest.raises(NetworkError, match=r"ill-conditioned.*S1"):
         solve_network(compile_network(bad, state), harmonics=False)
+
+
+@pytest.mark.parametrize("position", ["single", "series", "parallel"])
+def test_full_scale_branch_obeys_its_abcd_two_port(demo: Bench, position: str) -> None:
+    # the stamped exact-pi sections (with inner nodes) must satisfy [Vs, Is] = ABCD [Vr, Ir] of the
+    # branch computed by the two-port module (exact line: Saadat ch. 5 / field-reference §2.1)
+    from labkit.core.lines import bench_section_values, branch_two_port, position_paths
+
+    state = BenchState(started=frozenset({"REF"}), switches=(("SWR", True),),
+                       lines=(("L12", "short"), ("L23", position)), loads=(("RB3", 2), ("CB", 1)))
+    sol = solve_network(compile_network(demo, state), harmonics=False)
+    labels, values = quantity_arrays(sol)
+    table = {(lab.location, lab.quantity): values[0, k] for k, lab in enumerate(labels)}
+
+    def phasor(loc: str, q: str) -> complex:
+        return table[(loc, f"{q}_rms")] * np.exp(1j * np.radians(table[(loc, f"{q}_angle")]))
+
+    vs, vr = phasor("B2", "v"), phasor("B3", "v")
+    i_s, i_r = phasor("L23@B2", "i"), -phasor("L23@B3", "i")
+    paths = position_paths(demo.branch("L23"), position, bench_section_values(demo))
+    abcd = branch_two_port(paths, 2 * np.pi * 60.0).abcd
+    np.testing.assert_allclose(abcd @ np.array([vr, i_r]), [vs, i_s], rtol=1e-9)
+
+
+def test_band_percentiles_equal_numpy_percentile() -> None:
+    # numpy.percentile (linear interpolation) is the outside reference for the fast partition path
+    from labkit.core.predict import BAND_PERCENTILES, _percentiles
+
+    rng = np.random.default_rng(5)
+    values = rng.normal(size=(1001, 7))
+    values[3, 2] = np.nan
+    expected = np.nanpercentile(values, BAND_PERCENTILES, axis=0)
+    np.testing.assert_allclose(_percentiles(values.copy()), expected, rtol=1e-12)

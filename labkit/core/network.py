@@ -127,14 +127,32 @@ def element_admittances(kind: NDArray, r: NDArray, l: NDArray, c: NDArray, y_fix
                         omega: float | NDArray) -> NDArray[np.complex128]:
     """Admittances of stacked elements, shape broadcast of the inputs (..., n_elements).
 
-    ``omega`` broadcasts too (scalar, or (..., 1) for several frequencies).
+    ``omega`` broadcasts too (scalar, or (..., 1) for several frequencies). Each
+    kind is evaluated only on its own columns.
     """
+    r, l, c, y_fixed = np.asarray(r, float), np.asarray(l, float), np.asarray(c, float), np.asarray(y_fixed, complex)
     w = np.asarray(omega, dtype=float)
+    shape = np.broadcast_shapes(r.shape, l.shape, c.shape, y_fixed.shape, w.shape)
+    out = np.empty(shape, dtype=complex)
+    kind = np.asarray(kind)
+
+    def cols(x: NDArray, sel: NDArray) -> NDArray:
+        return np.broadcast_to(x, shape)[..., sel]
+
+    ser, par, fix = np.flatnonzero(kind == 0), np.flatnonzero(kind == 1), np.flatnonzero(kind == 2)
     with np.errstate(divide="ignore", invalid="ignore"):
-        z_series = r + 1j * w * l - 1j / (w * c)
-        y_series = 1.0 / z_series
-        y_parallel = 1.0 / r - 1j / (w * l) + 1j * w * c
-    return np.where(kind == 0, y_series, np.where(kind == 1, y_parallel, y_fixed))
+        if ser.size:
+            ws, cs = cols(w, ser), cols(c, ser)
+            x = ws * cols(l, ser) - np.where(np.isfinite(cs), 1.0 / (ws * cs), 0.0)
+            out[..., ser] = 1.0 / (cols(r, ser) + 1j * x)
+        if par.size:
+            wp, rp, lp = cols(w, par), cols(r, par), cols(l, par)
+            g = np.where(np.isfinite(rp), 1.0 / rp, 0.0)
+            b = wp * cols(c, par) - np.where(np.isfinite(lp), 1.0 / (wp * lp), 0.0)
+            out[..., par] = g + 1j * b
+    if fix.size:
+        out[..., fix] = cols(y_fixed, fix)
+    return out
 
 
 def assemble(n_nodes: int, a: NDArray, b: NDArray, y: NDArray) -> NDArray[np.complex128]:
@@ -147,6 +165,9 @@ def assemble(n_nodes: int, a: NDArray, b: NDArray, y: NDArray) -> NDArray[np.com
     lead = y.shape[:-1]
     batch = int(np.prod(lead)) if lead else 1
     n_el = y.shape[-1]
+    if np.ndim(a) == 1 and batch >= 64:
+        return _assemble_shared(n_nodes, np.asarray(a), np.asarray(b), y.reshape(batch, n_el)).reshape(
+            *lead, n_nodes, n_nodes)
     yf = y.reshape(batch, n_el)
     af = np.broadcast_to(a, (*lead, n_el)).reshape(batch, n_el)
     bf = np.broadcast_to(b, (*lead, n_el)).reshape(batch, n_el)
@@ -161,6 +182,27 @@ def assemble(n_nodes: int, a: NDArray, b: NDArray, y: NDArray) -> NDArray[np.com
     re = np.bincount(idx, weights=weights.real, minlength=total)
     im = np.bincount(idx, weights=weights.imag, minlength=total)
     return (re + 1j * im).reshape(*lead, n_nodes, n_nodes)
+
+
+def _assemble_shared(n_nodes: int, a: NDArray, b: NDArray, y: NDArray) -> NDArray[np.complex128]:
+    """Many samples of one pattern: a small real stamp matrix turns the scatter into one matmul."""
+    ga, gb = a >= 0, b >= 0
+    both = ga & gb
+    el = np.arange(a.size)
+    pos = np.concatenate([a[ga] * (n_nodes + 1), b[gb] * (n_nodes + 1), a[both] * n_nodes + b[both],
+                          b[both] * n_nodes + a[both]])
+    src = np.concatenate([el[ga], el[gb], el[both], el[both]])
+    sign = np.concatenate([np.ones(ga.sum() + gb.sum()), -np.ones(2 * both.sum())])
+    unique, inverse = np.unique(pos, return_inverse=True)
+    stamp = np.zeros((a.size, unique.size))
+    np.add.at(stamp, (src, inverse), sign)
+    # one real matmul on the interleaved (re, im) pairs: (S, 2, E) @ (E, U)
+    pairs = np.ascontiguousarray(y.view(np.float64).reshape(y.shape[0], a.size, 2).transpose(0, 2, 1))
+    stamped = pairs @ stamp
+    out = np.zeros((y.shape[0], n_nodes * n_nodes), dtype=complex)
+    out.real[:, unique] = stamped[:, 0]
+    out.imag[:, unique] = stamped[:, 1]
+    return out.reshape(-1, n_nodes, n_nodes)
 
 
 # -- compilation -----------------------------------------------------------------------------------
@@ -314,9 +356,9 @@ def compile_network(bench: Bench, state: BenchState, frequency_hz: float | None 
             # fundamental: constant-power admittance at rated voltage, refined by the solver's iteration
             s1 = complex(ld.p1, ld.q1)
             y_rated = np.conj(s1) / ld.rated_voltage**2
-            if harmonic == 1:
-                elements.append(Element(ld.id, "loads", "fundamental", "fixed", node, NEUTRAL, y_fixed=complex(y_rated),
-                                        bus_a=ld.bus, fixed_param=param(ld.id, "p1", 1.0, ld.tolerance)))
+            # present at every order so the harmonic networks keep the same structure (zeroed there)
+            elements.append(Element(ld.id, "loads", "fundamental", "fixed", node, NEUTRAL, y_fixed=complex(y_rated),
+                                    bus_a=ld.bus, fixed_param=param(ld.id, "p1", 1.0, ld.tolerance)))
             continue
         assert isinstance(ld, LinearLoad)
         st = ld.steps[step - 1]

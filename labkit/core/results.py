@@ -143,9 +143,22 @@ def quantity_arrays(sol: Solution) -> tuple[list[RowLabel], NDArray[np.float64]]
             va = np.sqrt(np.sum(np.abs(sol.v[:, :, net.bus_node[br.from_bus]]) ** 2, 1))
             vb = np.sqrt(np.sum(np.abs(sol.v[:, :, net.bus_node[br.to_bus]]) ** 2, 1))
             rows.add(br.id, "v_drop", va - vb)
+            rows.add(br.id, "regulation", _regulation(sol, br.id, va, vb))
     _loading_rows(sol, rows, end_currents)
     _open_switch_rows(sol, rows)
     return rows.labels, np.stack(rows.values, axis=1) if rows.values else np.zeros((sol.n_samples, 0))
+
+
+def _regulation(sol: Solution, branch_id: str, vs: NDArray, vr: NDArray) -> NDArray:
+    """(|Vs|/|A| - |Vr|) / |Vr| with the from-bus as sending end (field-reference §2.1)."""
+    from labkit.core.lines import bench_section_values, branch_two_port, position_paths
+
+    net = sol.network
+    branch = net.bench.branch(branch_id)
+    values = bench_section_values(net.bench)
+    paths = position_paths(branch, net.state.line_position(branch_id), values)
+    a = branch_two_port(paths, 2 * np.pi * net.frequency_hz).abcd[..., 0, 0]
+    return (vs / np.abs(a) - vr) / vr
 
 
 def _switch_currents(sol: Solution, end_currents: dict[tuple[str, str], NDArray]) -> dict[tuple[str, str], NDArray]:

@@ -1,0 +1,195 @@
+"""Benchmark of the prediction engine (prints figures; no timed assertion).
+
+Targets (issue: prediction engine): array-level solve of one configuration <= 50 us; batched
+throughput >= 30 % of the bare stacked solve and >= 200,000 configurations/s on one core; a
+10,000-sample band <= 50 ms; tidy output <= 1 ms. Peers measured in the same run: the bare
+stacked ``np.linalg.solve`` on the same matrices, pandapower's ``runpp`` on the same network,
+ngspice on the same netlist.
+"""
+
+from __future__ import annotations
+
+import shutil
+import subprocess
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from labkit.core.bench import Bench
+from labkit.core.network import assemble, compile_network, element_admittances
+from labkit.core.predict import predict_state
+from labkit.core.solve import element_arrays, solve_network, stacked_solve
+from labkit.core.state import BenchState, states_after_steps
+from labkit.core.switchspace import make_batch, neighbours, search, solve_batch
+from labkit.core.tables import prediction_frame
+from labkit.files.loader import load_bench, load_template
+from labkit.files.spice import spice_netlist
+
+pytestmark = pytest.mark.benchmark
+ROOT = Path(__file__).resolve().parents[2] / "session_templates"
+CHAINS = {"L12": 4, "L23": 2, "L34": 3, "L45": 2, "L56": 2, "L61": 1}
+
+
+def benchmark_bench() -> tuple[Bench, BenchState]:
+    """Fixed benchmark network: 6 buses + 8 inner pi nodes, 13 switches (generated, not demo data)."""
+    buses = [f"B{k}" for k in range(0, 7)]
+    data = {
+        "bench": {"labkit_bench": 1, "id": "benchmark", "version": "1", "title": "benchmark network",
+                  "nominal_frequency": "60 Hz", "nominal_voltage": "120 V"},
+        "buses": [{"name": b} for b in buses],
+        "sources": [{"id": "REF", "kind": "mains_reference", "bus": "B0", "rating": "2 kVA", "r_internal": "0.3 ohm",
+                     "l_internal": "0.5 mH", "mains_voltage": "120 V", "mains_frequency": "60 Hz"}],
+        "switches": [], "line_sections": [], "line_branches": [], "loads": [],
+    }
+    ties = [("B0", "B1"), ("B1", "B3"), ("B2", "B4"), ("B3", "B5"), ("B4", "B6"), ("B1", "B4"), ("B2", "B5"),
+            ("B3", "B6"), ("B1", "B5"), ("B2", "B6"), ("B1", "B6"), ("B2", "B3"), ("B4", "B5")]
+    for k, (a, b) in enumerate(ties):
+        data["switches"].append({"id": f"T{k}", "from_bus": a, "to_bus": b, "rated_current": "10 A"})
+    n = 0
+    for bid, count in CHAINS.items():
+        ids = []
+        for _ in range(count):
+            n += 1
+            ids.append(f"S{n}")
+            data["line_sections"].append({"id": f"S{n}", "r": "0.5 ohm", "l": "5 mH", "c": "3 uF",
+                                          "rated_current": "5 A", "tolerance": "5 %"})
+        a, b = f"B{bid[1]}", f"B{bid[2]}"
+        data["line_branches"].append({"id": bid, "from_bus": a, "to_bus": b,
+                                      "positions": [{"name": "on", "paths": [ids]}]})
+    for k, bus in enumerate(buses[1:], start=1):
+        data["loads"].append({"id": f"R{k}", "kind": "resistive", "bus": bus, "rated_current": "3 A",
+                              "steps": [{"r": f"{150 + 20 * k} ohm"}]})
+        data["loads"].append({"id": f"X{k}", "kind": "inductive", "bus": bus, "combination": "series",
+                              "rated_current": "3 A", "steps": [{"r": "3 ohm", "l": f"{0.3 + 0.05 * k} H"}]})
+    bench = Bench.model_validate(data)
+    state = BenchState(started=frozenset({"REF"}), switches=(("T0", True),),
+                       lines=tuple((b, "on") for b in CHAINS), loads=tuple(
+                           [(f"R{k}", 1) for k in range(1, 7)] + [(f"X{k}", 1) for k in range(1, 7)]))
+    return bench, state
+
+
+def _best(fn, repeat: int = 7, number: int = 1) -> float:
+    times = []
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        for _ in range(number):
+            fn()
+        times.append((time.perf_counter() - t0) / number)
+    return min(times)
+
+
+def _array_level(bench: Bench, state: BenchState) -> dict[str, float]:
+    net = compile_network(bench, state)
+    arr = element_arrays(net)
+    omega = 2 * np.pi * 60.0
+    src = [(r.node, r.element_index, r.emf_v) for r in net.sources]
+
+    def one() -> None:
+        y = element_admittances(arr.kind, arr.r, arr.l, arr.c, arr.y_fixed, omega)
+        ymat = assemble(net.n_nodes, arr.a, arr.b, y)
+        inj = np.zeros((1, net.n_nodes), dtype=complex)
+        for node, j, e in src:
+            inj[0, node] += e * y[0, j]
+        stacked_solve(ymat, inj)
+
+    return {"nodes": net.n_nodes, "array_solve_us": _best(one, number=200) * 1e6}
+
+
+def _report(name: str, figures: dict[str, float]) -> None:
+    print(f"\nBENCH {name}: " + "; ".join(f"{k} = {v:.4g}" for k, v in figures.items()))
+
+
+def test_benchmark_prediction_engine() -> None:
+    bench, state = benchmark_bench()
+    figures = _array_level(bench, state)
+    net = compile_network(bench, state)
+    figures["switches"] = len(bench.switches)
+
+    # tidy output, on its own
+    pred = predict_state(bench, state, n_samples=0)
+    figures["tidy_frame_ms"] = _best(lambda: prediction_frame(pred, "s", 0, "free_reading"), number=20) * 1e3
+
+    # batched configurations: every neighbour with up to 2 switch items changed
+    states = [s for _, s in neighbours(bench, state, 2)][:4000]
+    nets = [compile_network(bench, s) for s in states]
+    batch = make_batch(nets)
+    emf = np.zeros((len(nets), batch.src_node.shape[1]), dtype=complex)
+    emf[:, 0] = 120.0
+    t_batch = _best(lambda: solve_batch(batch, emf, 60.0), repeat=3)
+    y_el = element_admittances(batch.kind, batch.r, batch.l, batch.c, batch.y_fixed, 2 * np.pi * 60)
+    ymat = assemble(batch.n_nodes, batch.a, batch.b, y_el)
+    rhs = np.ones((len(nets), batch.n_nodes, 1), dtype=complex)
+    t_bare = _best(lambda: np.linalg.solve(ymat, rhs), repeat=3)
+    figures["configs"] = len(nets)
+    figures["batched_configs_per_s"] = len(nets) / t_batch
+    figures["bare_solve_configs_per_s"] = len(nets) / t_bare
+    figures["batched_over_bare_pct"] = 100 * t_bare / t_batch
+
+    # the whole switch space search (2 changes, compile + stacked solve + ranking)
+    t0 = time.perf_counter()
+    search(bench, state, {("B3", "v_rms"): (110.0, 0.5)}, max_changes=2, budget_s=30.0)
+    figures["switch_space_search_s"] = time.perf_counter() - t0
+
+    # a 10,000-sample tolerance band of one configuration
+    figures["band_10k_ms"] = _best(lambda: predict_state(bench, state, n_samples=10_000), repeat=3) * 1e3
+
+    # peers on the same network
+    figures.update(_pandapower_peer(bench, state))
+    figures.update(_ngspice_peer(net))
+    figures["array_solve_vs_runpp"] = figures.get("pandapower_runpp_ms", np.nan) * 1e3 / figures["array_solve_us"]
+    _report("network", figures)
+
+
+def test_benchmark_demo_bench() -> None:
+    bench = load_bench(ROOT / "demo-bench.toml").bench
+    template = load_template(ROOT / "lab2-synchronize.toml", bench).template
+    state = states_after_steps(bench, template)[-1]  # two sources in parallel, droop roles
+    figures = _array_level(bench, state)
+    net = compile_network(bench, state)
+    figures["role_solve_ms"] = _best(lambda: solve_network(net, harmonics=False), repeat=5) * 1e3
+    figures["band_10k_ms"] = _best(lambda: predict_state(bench, state, n_samples=10_000), repeat=3) * 1e3
+    _report("demo_bench", figures)
+
+
+def _pandapower_peer(bench: Bench, state: BenchState) -> dict[str, float]:
+    try:
+        import pandapower as pp
+    except ImportError:
+        return {}
+    netpp = pp.create_empty_network(f_hz=60.0, sn_mva=0.001)
+    idx = {b: pp.create_bus(netpp, vn_kv=0.12, name=b) for b in bench.bus_names}
+    pp.create_ext_grid(netpp, idx["B0"], vm_pu=1.0)
+    for sw in bench.switches:
+        pp.create_switch(netpp, idx[sw.from_bus], idx[sw.to_bus], et="b", closed=state.switch_closed(sw.id))
+    for br in bench.line_branches:
+        for path in br.positions[0].paths:
+            prev = idx[br.from_bus]
+            for m, sid in enumerate(path):
+                sec = bench.section(sid)
+                nxt = idx[br.to_bus] if m == len(path) - 1 else pp.create_bus(netpp, vn_kv=0.12)
+                pp.create_line_from_parameters(netpp, prev, nxt, 1.0, sec.r, 2 * np.pi * 60 * sec.l, sec.c * 1e9,
+                                               5e-3)
+                prev = nxt
+    for ld in bench.loads:
+        st = ld.steps[0]
+        z = complex(st.r or 0, 2 * np.pi * 60 * (st.l or 0))
+        s = 120.0**2 / np.conj(z)
+        # constant-power loads sized at nominal voltage: a timing peer, not a numerical reference
+        pp.create_load(netpp, idx[ld.bus], p_mw=s.real * 1e-6, q_mvar=s.imag * 1e-6)
+    pp.runpp(netpp)
+    return {"pandapower_runpp_ms": _best(lambda: pp.runpp(netpp), repeat=5) * 1e3}
+
+
+def _ngspice_peer(net) -> dict[str, float]:
+    exe = shutil.which("ngspice")
+    if exe is None:
+        return {}
+    from labkit.core.solve import solve_network as solve
+
+    text = spice_netlist(solve(net, harmonics=False)).replace(".print", "*.print")
+    path = Path("/tmp/labkit-bench-netlist.cir")
+    path.write_text(text)
+    t = _best(lambda: subprocess.run([exe, "-b", str(path)], capture_output=True, check=False), repeat=3)
+    return {"ngspice_process_ms": t * 1e3}
