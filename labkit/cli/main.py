@@ -31,7 +31,9 @@ def _cmd_check(args: argparse.Namespace) -> int:
 
 
 def _cmd_demo(args: argparse.Namespace) -> int:
+    from labkit.core.cautions import DEFER, step_cautions
     from labkit.core.errors import FileValidationError
+    from labkit.core.predict import predict_template
     from labkit.demo_files import DEMO_BENCH, DEMO_CART, demo_path
     from labkit.files.loader import load_bench, load_template
 
@@ -42,16 +44,35 @@ def _cmd_demo(args: argparse.Namespace) -> int:
         print(exc, file=sys.stderr)
         return 1
     b = loaded.bench
-    print(f"labkit {__version__} demo (invented demo data)")
+    print(f"labkit {__version__}: demo session plan with predicted readings (invented demo data)")
     print(f"bench : {b.bench.title} [{b.bench.id} v{b.bench.version}], cart {b.cart.id if b.cart else '-'}")
     print(f"lab   : {template.template.title} [{template.template.id} v{template.template.version}]")
-    print("caution: this lab uses mains voltage and rotating machinery; follow the lab's safety rules,")
-    print("         local codes and your supervisor. labkit's predictions do not make a configuration safe.")
-    for i, step in enumerate(template.steps):
-        print(f"\n{i:2d}. [{step.id}] {step.kind}: {step.title}")
+    print(f"note  : {DEFER}")
+    steps = predict_template(b, template, n_samples=args.samples)
+    for step, pred in zip(template.steps, steps, strict=True):
+        print(f"\n{pred.index:2d}. [{step.id}] {step.kind}: {step.title}")
+        if pred.prediction is None:
+            print(f"    cannot be predicted: {pred.error}")
+            continue
+        for caution in step_cautions(b, step, pred.state, pred.prediction.rating_flags):
+            print(f"    ! {caution}")
+        for warning in pred.prediction.warnings:
+            print(f"    warning: {warning}")
         for r in step.readings:
-            print(f"      read {r.quantity} at {r.location} in {r.unit} (tolerance {r.tolerance})")
+            try:
+                value, low, high = pred.prediction.reading(r.location, r.quantity, r.sensor)
+            except KeyError:
+                print(f"    {r.quantity:>9} at {r.location:<10} (no prediction at this location)")
+                continue
+            print(f"    {r.quantity:>9} at {r.location:<10} predicted {value:10.4g} {_unit(r.quantity)}"
+                  f"  band [{low:.4g}, {high:.4g}]  tolerance {r.tolerance}")
     return 0
+
+
+def _unit(name: str) -> str:
+    from labkit.core.quantities import quantity
+
+    return quantity(name).unit
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -66,18 +87,31 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser("demo", help="run the main job on the embedded demo bench and template")
     p.add_argument("--template", default="lab1-line-and-loads", help="demo template name or file")
+    p.add_argument("--samples", type=int, default=1000, help="Monte Carlo samples for the bands")
     p.set_defaults(func=_cmd_demo)
 
     from labkit.cli.predict import add_predict_parsers
 
     add_predict_parsers(sub)
+
+    from labkit.cli.analyze import add_analyze_parser
+
+    add_analyze_parser(sub)
+
+    from labkit.cli.sync import add_sync_parser
+
+    add_sync_parser(sub)
     return parser
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``labkit`` console script."""
     args = build_parser().parse_args(argv)
-    return int(args.func(args))
+    try:
+        return int(args.func(args))
+    except BrokenPipeError:  # output piped into a pager or head that closed early
+        sys.stderr.close()
+        return 0
 
 
 if __name__ == "__main__":

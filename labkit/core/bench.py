@@ -28,6 +28,7 @@ from labkit.core.fields import (
     Time,
     Tolerance,
     Voltage,
+    located_error,
     quantity_field,
 )
 
@@ -86,7 +87,7 @@ class Transformer(Model):
     def _tap_order(self) -> Transformer:
         if not self.tap_min <= self.tap_default <= self.tap_max:
             msg = "expected tap_min <= tap_default <= tap_max"
-            raise ValueError(msg)
+            raise located_error(msg, "tap_default")
         return self
 
 
@@ -106,7 +107,7 @@ class SpeedControl(Model):
     def _setpoint_order(self) -> SpeedControl:
         if not self.setpoint_min <= self.setpoint_default <= self.setpoint_max:
             msg = "expected setpoint_min <= setpoint_default <= setpoint_max"
-            raise ValueError(msg)
+            raise located_error(msg, "setpoint_default")
         return self
 
 
@@ -267,14 +268,14 @@ class LinearLoad(Model):
         needed = {"resistive": ("r",), "inductive": ("l",), "capacitive": ("c",)}.get(self.kind)
         if needed is None:
             return self
-        for step in self.steps:
+        for index, step in enumerate(self.steps):
             present = {k for k in ("r", "l", "c") if getattr(step, k) is not None}
             extra = present - set(needed) - ({"r"} if self.kind == "inductive" else set())
             if needed[0] not in present or extra:
                 msg = (f"a {self.kind} load's steps give {needed[0]}"
                        + (" (and r for the coil's resistance)" if self.kind == "inductive" else "")
                        + '; use kind = "combined" for mixed steps')
-                raise ValueError(msg)
+                raise located_error(msg, "steps", index)
         return self
 
 
@@ -324,7 +325,7 @@ class SensorBase(Model):
 
 
 class VoltageSensor(SensorBase):
-    """``kind = "voltage"``: a voltage channel; ``scale`` is volts at the input per volt at the ADC."""
+    """``kind = "voltage"``: a voltage channel; ``scale`` is the sensor's output (V) per measured volt."""
 
     kind: Literal["voltage"]
     scale: quantity_field("voltage_per_voltage", positive=True)
@@ -332,7 +333,7 @@ class VoltageSensor(SensorBase):
 
 
 class CurrentSensor(SensorBase):
-    """``kind = "current"``: a current channel; ``scale`` is volts at the ADC per ampere."""
+    """``kind = "current"``: a current channel; ``scale`` is the sensor's output (V) per measured ampere."""
 
     kind: Literal["current"]
     scale: quantity_field("voltage_per_current", positive=True)

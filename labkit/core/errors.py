@@ -5,9 +5,13 @@
     LabkitError                     base of everything labkit raises on purpose
     ├── UnitError (ValueError)      a value with a missing, unknown or wrong-kind unit
     ├── LocationError (ValueError)  a location string that does not follow the grammar
+    ├── ModelInputError (ValueError) a numeric model argument outside what the model accepts
     ├── UnknownNameError (KeyError) a quantity, element or step that does not exist
-    └── FileValidationError (ValueError)
-                                    one or more located problems in a bench, cart or template file
+    ├── FileValidationError (ValueError)
+    │                               one or more located problems in a bench, cart or template file
+    └── CaptureError (ValueError)   a waveform capture that cannot give trustworthy readings
+                                    (NaN samples, dropped samples, too short, too near Nyquist,
+                                    too large, a malformed capture file)
 
 Messages name what was expected and what was found; file errors also carry the
 file, line and field path of every problem (:class:`Problem`).
@@ -30,6 +34,10 @@ class UnitError(LabkitError, ValueError):
 
 class LocationError(LabkitError, ValueError):
     """A location string that does not follow the location grammar."""
+
+
+class ModelInputError(LabkitError, ValueError):
+    """A numeric argument a model cannot accept (non-positive rating, unsorted time axis, ...)."""
 
 
 class UnknownNameError(LabkitError, KeyError):
@@ -106,3 +114,7 @@ class FileValidationError(LabkitError, ValueError):
         count = len(self.problems)
         head = f"{count} problem{'s' if count != 1 else ''} found"
         return head + ":\n" + "\n".join(f"  {p}" for p in self.problems)
+
+
+class CaptureError(LabkitError, ValueError):
+    """A waveform capture (or capture file) that cannot give trustworthy readings; the message says why."""

@@ -94,6 +94,16 @@ Angle = quantity_field("angle", minimum=-360.0, maximum=360.0)
 Tolerance = quantity_field("ratio", minimum=0.0, maximum=1.0)  # a tolerance of more than 100 % is absurd
 Percent = quantity_field("ratio", minimum=0.0, maximum=10.0)
 
+
+def located_error(message: str, *at: str | int) -> PydanticCustomError:
+    """A model validator's error that points at a key inside the model (``at``), not at the model as a whole.
+
+    :mod:`labkit.files.validation` appends ``at`` to the error's field path, so a
+    file error names the line of that key.
+    """
+    return PydanticCustomError("value_error", message.replace("{", "(").replace("}", ")"), {"at": list(at)})
+
+
 Name = Annotated[str, Field(pattern=f"^{NAME_PATTERN}$", max_length=64)]
 """A bus, element, sensor or step id: a letter, then letters, digits, ``_``, ``-`` or ``.``."""
 

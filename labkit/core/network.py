@@ -130,11 +130,19 @@ def element_admittances(kind: NDArray, r: NDArray, l: NDArray, c: NDArray, y_fix
     ``omega`` broadcasts too (scalar, or (..., 1) for several frequencies). Each
     kind is evaluated only on its own columns.
     """
-    r, l, c, y_fixed = np.asarray(r, float), np.asarray(l, float), np.asarray(c, float), np.asarray(y_fixed, complex)
+    r, l, c = np.asarray(r, float), np.asarray(l, float), np.asarray(c, float)  # noqa: E741
+    y_fixed = np.asarray(y_fixed, complex)
     w = np.asarray(omega, dtype=float)
     shape = np.broadcast_shapes(r.shape, l.shape, c.shape, y_fixed.shape, w.shape)
-    out = np.empty(shape, dtype=complex)
     kind = np.asarray(kind)
+    if kind.ndim > 1:  # per-configuration kinds (a padded batch): evaluate by masks
+        kb = np.broadcast_to(kind, shape)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            x = w * l - np.where(np.isfinite(c), 1.0 / (w * c), 0.0)
+            y_ser = 1.0 / (r + 1j * x)
+            y_par = np.where(np.isfinite(r), 1.0 / r, 0.0) + 1j * (w * c - np.where(np.isfinite(l), 1.0 / (w * l), 0.0))
+        return np.where(kb == 0, y_ser, np.where(kb == 1, y_par, y_fixed))
+    out = np.empty(shape, dtype=complex)
 
     def cols(x: NDArray, sel: NDArray) -> NDArray:
         return np.broadcast_to(x, shape)[..., sel]

@@ -42,13 +42,37 @@ class Prediction:
     seed: int = DEFAULT_SEED
     n_samples: int = 0
 
-    def value(self, location: str, quantity: str) -> float:
-        """The nominal prediction of one location and quantity."""
+    def index(self, location: str, quantity: str) -> int:
+        """Row of one location and quantity; KeyError when not predicted."""
         for k, lab in enumerate(self.labels):
             if lab.location == location and lab.quantity == quantity:
-                return float(self.nominal[k])
+                return k
         msg = f"no prediction of {quantity} at {location}"
         raise KeyError(msg)
+
+    def value(self, location: str, quantity: str) -> float:
+        """The nominal prediction of one location and quantity."""
+        return float(self.nominal[self.index(location, quantity)])
+
+    def reading(self, location: str, quantity: str, sensor: str | None = None) -> tuple[float, float, float]:
+        """(predicted, band_low, band_high) as a sensor at ``location`` reads it (its reference direction)."""
+        from labkit.core.results import oriented, sensor_direction
+
+        k = self.index(location, quantity)
+        direction = sensor_direction(self.network.bench, location, sensor) if "@" in location else 1
+        trio = oriented(quantity, np.array([self.nominal[k], self.band_low[k], self.band_high[k]]), direction)
+        lo, hi = sorted((float(trio[1]), float(trio[2])))
+        return float(trio[0]), lo, hi
+
+    def merge_rows(self, other: Prediction, locations: set[str], note: str) -> None:
+        """Append another prediction's rows at ``locations`` (e.g. an open switch before closing)."""
+        for k, lab in enumerate(other.labels):
+            if lab.location in locations and not any(
+                    (x.location, x.quantity) == (lab.location, lab.quantity) for x in self.labels):
+                self.labels.append(RowLabel(lab.location, lab.quantity, lab.status, note))
+                self.nominal = np.append(self.nominal, other.nominal[k])
+                self.band_low = np.append(self.band_low, other.band_low[k])
+                self.band_high = np.append(self.band_high, other.band_high[k])
 
 
 @dataclass
@@ -134,6 +158,14 @@ def predict_template(bench: Bench, template: SessionTemplate, *, n_samples: int 
         except NetworkError as exc:
             out.append(StepPrediction(index, step.id, step.kind, state, None, str(exc)))
             continue
+        if step.kind == "synchronize":
+            # the closing quantities belong to the moment before the switch closes
+            pre = state.with_changes(switches={step.switch: before.switch_closed(step.switch)})
+            try:
+                pre_pred = predict_state(bench, pre, n_samples=n_samples, seed=seed, harmonics=False)
+                pred.merge_rows(pre_pred, {step.switch}, "before closing")
+            except NetworkError as exc:
+                pred.warnings.append(f"the state before closing cannot be solved: {exc}")
         for mid in intermediate_states(before, state):
             try:
                 mid_pred = predict_state(bench, mid, n_samples=min(n_samples, 500), seed=seed, harmonics=harmonics)

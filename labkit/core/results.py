@@ -232,3 +232,35 @@ def _open_switch_rows(sol: Solution, rows: _Rows) -> None:
 
 
 __all__ = ["RowLabel", "quantity_arrays"]
+
+
+# quantities that change sign when a current's reference direction is reversed; angles turn by 180 deg
+_SIGNED = {"p", "q1", "pf", "p1", "pf1", "ph"}
+_TURNED = {"i_angle", "phase"}
+
+
+def sensor_direction(bench: object, location: str, sensor_id: str | None = None) -> int:
+    """+1 when a current sensor at ``ELEMENT@BUS`` points from the bus into the element, else -1.
+
+    Uses the named sensor's placement, or the first current sensor placed there;
+    +1 (the passive convention of predictions) when no sensor is placed there.
+    """
+    for sensor in getattr(bench, "sensors", []):
+        if sensor.kind != "current" or (sensor_id is not None and sensor.id != sensor_id):
+            continue
+        for placement in sensor.placements:
+            if placement.location == location:
+                element, _, bus = location.partition("@")
+                return 1 if (placement.from_, placement.to) == (bus, element) else -1
+    return 1
+
+
+def oriented(quantity_name: str, values: NDArray, direction: int) -> NDArray:
+    """Values of a current-related quantity seen in a sensor's reference direction (+1 or -1)."""
+    if direction == 1:
+        return values
+    if quantity_name in _SIGNED:
+        return -values
+    if quantity_name in _TURNED:
+        return wrap_deg(values + 180.0)
+    return values

@@ -126,14 +126,24 @@ def _convert(value: float, unit_text: str, kind: Kind) -> float:
             ValueError, AssertionError) as exc:
         msg = f'unknown unit "{unit_text}"'
         raise UnitError(msg) from exc
+    if not _accepts(kind, units):
+        others = [k.name.replace("_", " ") for k in KINDS.values() if k is not kind and _accepts(k, units)]
+        what = f" (it is a unit of {others[0]})" if others else ""
+        msg = (f'"{unit_text}" is not a unit of {kind.name.replace("_", " ")}{what}; '
+               f'expected a unit like "{kind.example}"')
+        raise UnitError(msg)
+    target = reg.Unit(kind.si_unit) if kind.si_unit else reg.dimensionless
+    return float(reg.Quantity(value, units).to(target).magnitude)
+
+
+def _accepts(kind: Kind, units: pint.Unit) -> bool:
+    """True when ``units`` has the kind's dimension and only unit families the kind allows."""
+    reg = registry()
     roots = _roots(units)
     target = reg.Unit(kind.si_unit) if kind.si_unit else reg.dimensionless
-    if units.dimensionality != target.dimensionality or (
-        kind.roots is not None and not set(roots) <= kind.roots
-    ) or set(roots) & kind.forbidden_roots:
-        msg = f'"{unit_text}" is not a unit of {kind.name.replace("_", " ")}'
-        raise UnitError(msg)
-    return float(reg.Quantity(value, units).to(target).magnitude)
+    return (units.dimensionality == target.dimensionality
+            and (kind.roots is None or set(roots) <= kind.roots)
+            and not set(roots) & kind.forbidden_roots)
 
 
 def parse_quantity(
@@ -216,7 +226,29 @@ def parse_quantity(
                 msg = (f'"{raw}" is {magnitude:.4g} {spec.si_unit or "(ratio)"}, implausible here '
                        f'(did you mean "{number:g} {alt}"? unit prefixes are case-sensitive)')
                 raise UnitError(msg)
+        # No case slip explains it: a value this far outside a bench's scale is a typo, not a reading.
+        msg = (f'"{raw}" is {magnitude:.4g} {spec.si_unit or "(ratio)"}, outside the plausible range '
+               f"{low:g}..{high:g} {spec.si_unit or '(ratio)'} for a {kind.replace('_', ' ')}")
+        raise UnitError(msg)
     return value
+
+
+def unit_factor(unit_text: str, kind: str) -> float:
+    """The SI value of one ``unit_text`` of ``kind`` (``"mA"`` -> 0.001), for units given on their own.
+
+    A unit whose size is outside the kind's bench-scale range (``"MA"`` for a
+    current) is refused with the case-slip hint, like :func:`parse_quantity`.
+
+    Raises
+    ------
+    UnitError
+        Unknown unit, a unit of another kind, or a likely case slip.
+    """
+    try:
+        return parse_quantity(f"1 {unit_text}", kind)
+    except UnitError as exc:
+        text = str(exc).replace(f'"1 {unit_text}"', f'unit "{unit_text}"').replace('"1 ', '"')
+        raise UnitError(text) from None
 
 
 def format_quantity(value: float, kind: str, digits: int = 4) -> str:

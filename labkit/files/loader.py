@@ -8,15 +8,16 @@ field path, what was expected and what was found.
 from __future__ import annotations
 
 import copy
+import datetime
 import hashlib
 import re
 import tomllib
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from pathlib import Path as FsPath
-from typing import Any
+from typing import Any, Literal
 
-from pydantic import BaseModel, ValidationError
+from pydantic import BaseModel, Field, ValidationError
 
 from labkit.core.bench import AlternatorSet, Bench, LinearLoad, MainsReference
 from labkit.core.errors import (
@@ -28,10 +29,11 @@ from labkit.core.errors import (
     UnknownNameError,
     did_you_mean,
 )
+from labkit.core.fields import Name
 from labkit.core.locations import parse_location
-from labkit.core.quantities import quantity
+from labkit.core.quantities import is_registered, quantity
 from labkit.core.template import SessionTemplate
-from labkit.core.units import KINDS, parse_quantity
+from labkit.core.units import KINDS, parse_quantity, unit_factor
 from labkit.files.tomlpos import Path, PositionMap, scan_positions
 from labkit.files.validation import problems_from_validation_error
 
@@ -212,6 +214,11 @@ def _check_bench(bench: Bench, col: _Collector) -> None:
         bus_ref(ld.bus, ("loads", i, "bus"))
     element_ids = bench.element_ids()
     for i, sn in enumerate(bench.sensors):
+        if sn.accuracy.resolution > sn.range:
+            unit = "V" if sn.kind == "voltage" else "A"
+            col.add(("sensors", i, "accuracy", "resolution"), "a resolution coarser than the sensor's range",
+                    f"at most the range, {sn.range:g} {unit}", f"{sn.accuracy.resolution:g} {unit}",
+                    code="physical_range")
         for j, pl in enumerate(sn.placements):
             where = ("sensors", i, "placements", j)
             try:
@@ -238,7 +245,8 @@ def _check_bench(bench: Bench, col: _Collector) -> None:
                 col.add((*where,), "a current sensor placement needs its reference direction: from and to",
                         f'from = "{loc.bus}", to = "{loc.name}" (or the reverse)', code="direction")
             elif {pl.from_, pl.to} != ends:
-                col.add((*where, "from"), "from and to must be the bus and the element of the location",
+                wrong = "to" if pl.from_ in ends and pl.from_ != pl.to else "from"  # point at the key that is off
+                col.add((*where, wrong), "from and to must be the bus and the element of the location",
                         f"{loc.bus} and {loc.name}", f"{pl.from_} -> {pl.to}", code="direction")
 
 
@@ -320,10 +328,10 @@ def _optional_keys(table: str, target: dict[str, Any]) -> list[str]:
 
 class _CartHeader(BaseModel):
     model_config = {"extra": "forbid"}
-    labkit_cart: int
-    id: str
-    bench_type: str
-    measured_on: Any
+    labkit_cart: Literal[1]
+    id: Name
+    bench_type: Name
+    measured_on: datetime.date = Field(description="a TOML date or an ISO date string, YYYY-MM-DD")
     meter: str = ""
     note: str = ""
 
@@ -382,20 +390,26 @@ def bench_from_data(source: SourceText, data: dict[str, Any], positions: Positio
         specialized = Bench.model_validate(merged)
     except ValidationError as exc:
         # values that came from the cart file are reported there; the rest in the bench file
-        located = []
-        for p in problems_from_validation_error(exc, Bench, source.name, positions):
-            cart_path = _cart_path_of(p.path, merged)
-            if cart_path is not None and cart_pos.line_of(cart_path):
-                located.append(Problem(cart_source.name, cart_pos.line_of(cart_path), cart_path, p.message,
-                                       p.expected, p.found, code=p.code))
-            else:
-                located.append(p)
-        raise FileValidationError(located) from exc
-    col2 = _Collector(cart_source.name, cart_pos)
+        raise FileValidationError(_relocate(problems_from_validation_error(exc, Bench, source.name, positions),
+                                            merged, cart_source.name, cart_pos)) from exc
+    col2 = _Collector(source.name, positions)
     _check_bench(specialized, col2)
     if col2.problems:
-        raise FileValidationError(col2.problems)
+        raise FileValidationError(_relocate(col2.problems, merged, cart_source.name, cart_pos))
     return LoadedBench(specialized, source, cart_source)
+
+
+def _relocate(problems: list[Problem], merged: dict[str, Any], cart_name: str, cart_pos: PositionMap) -> list[Problem]:
+    """Report problems caused by a cart's values in the cart file, at the cart's path; the rest stay in the bench."""
+    located = []
+    for p in problems:
+        cart_path = _cart_path_of(p.path, merged)
+        if cart_path is not None and cart_pos.line_of(cart_path):
+            located.append(Problem(cart_name, cart_pos.line_of(cart_path), cart_path, p.message, p.expected, p.found,
+                                   column=cart_pos.column_of(cart_path), code=p.code))
+        else:
+            located.append(p)
+    return located
 
 
 def _cart_path_of(bench_path: Path, merged: dict[str, Any]) -> Path | None:
@@ -458,6 +472,27 @@ def _check_template_alone(t: SessionTemplate, col: _Collector) -> None:
                 col.add((*where, "location"), str(exc), code="location")
             _check_unit(q.kind, q.unit, r.unit, (*where, "unit"), col)
             _check_tolerance(q.kind, q.unit, r.tolerance, (*where, "tolerance"), col)
+        if step.kind == "calibration" and step.reference_meter.range:
+            _check_meter_range(step.reference_meter.range, ("voltage", "current"),
+                               ("steps", i, "reference_meter", "range"), col)
+
+
+def _check_meter_range(text: str, kinds: Sequence[str], path: Path, col: _Collector) -> bool:
+    """A reference meter's range is a voltage or a current with its unit, of the calibrated sensor's kind."""
+    errors = []
+    for kind in kinds:
+        try:
+            value = parse_quantity(text, kind)
+        except UnitError as exc:
+            errors.append(str(exc))
+            continue
+        if value > 0:
+            return True
+        errors.append(f'"{text}" is not a positive {kind}')
+    hint = next((e for e in errors if "did you mean" in e or "decimal comma" in e), errors[0])
+    col.add(path, f"reference meter range: {hint}",
+            " or ".join(f'a {k} like "{KINDS[k].example}"' for k in kinds), repr(text), code="unit")
+    return False
 
 
 def _check_unit(kind: str, default_unit: str, unit: str, path: Path, col: _Collector) -> None:
@@ -467,10 +502,10 @@ def _check_unit(kind: str, default_unit: str, unit: str, path: Path, col: _Colle
                     code="unit")
         return
     try:
-        parse_quantity(f"1 {unit}", kind, plausible=(0.0, float("inf")))
+        unit_factor(unit, kind)
     except UnitError as exc:
-        col.add(path, str(exc), f'a unit of {kind.replace("_", " ")} like "{default_unit}"', repr(unit),
-                code="unit")
+        expected = "" if "expected" in str(exc) else f'a unit of {kind.replace("_", " ")} like "{default_unit}"'
+        col.add(path, str(exc), expected, repr(unit), code="unit")
 
 
 def _check_tolerance(kind: str, default_unit: str, tol: str, path: Path, col: _Collector) -> None:
@@ -491,9 +526,12 @@ def _check_tolerance(kind: str, default_unit: str, tol: str, path: Path, col: _C
             v = float(text.removesuffix("%").strip())
         except ValueError:
             v = -1.0
-        if v <= 0:
-            col.add(path, "expected a tolerance", '"instrument", "2 %" or an absolute value', repr(tol),
-                    code="unit")
+        # an absolute tolerance as wide as the whole scale (PF spans 1; THD is read in % points) is a typo
+        widest = 100.0 if default_unit == "%" else 1.0
+        if not 0 < v <= widest:
+            col.add(path, "expected a tolerance" if v <= 0 else f"an absolute tolerance of {v:g} is absurd",
+                    f'"instrument", "2 %" or an absolute value more than 0 and at most {widest:g} {default_unit}',
+                    repr(tol), code="unit" if v <= 0 else "physical_range")
         return
     try:
         v = parse_quantity(text, kind)
@@ -510,6 +548,10 @@ _CURRENT_QUANTITIES = {"i_rms", "i1_rms", "ih_rms", "i_angle", "i_dc", "thd_i", 
 _SYNC_QUANTITIES = {"slip", "beat_period", "dv_sync", "dphi_sync", "v_across", "advance_angle", "surge_peak"}
 
 
+_SINGULAR = {"sources": "source", "line_branches": "line branch", "loads": "load", "sensors": "sensor",
+             "switches": "switch"}
+
+
 def check_template_against_bench(t: SessionTemplate, bench: Bench, col: _Collector) -> None:
     """Every reference a template makes must exist on the bench, and every step must be possible."""
     if t.template.bench_type is not None and t.template.bench_type != bench.bench.id:
@@ -521,14 +563,14 @@ def check_template_against_bench(t: SessionTemplate, bench: Bench, col: _Collect
     for table, ids in tables.items():
         for k, name in enumerate(getattr(t.template.requires, table)):
             if name not in ids:
-                col.add(("template", "requires", table, k), f'the bench has no {table[:-1].replace("_", " ")} '
+                col.add(("template", "requires", table, k), f'the bench has no {_SINGULAR[table]} '
                         f'"{name}"{did_you_mean(name, ids)}', code="requirement")
 
     def ref(name: str, table: str, path: Path) -> bool:
         ids = tables[table]
         if name in ids:
             return True
-        col.add(path, f'no {table[:-1].replace("_", " ")} "{name}" on this bench{did_you_mean(name, ids)}',
+        col.add(path, f'no {_SINGULAR[table]} "{name}" on this bench{did_you_mean(name, ids)}',
                 f"one of {', '.join(ids)}" if ids else "", repr(name))
         return False
 
@@ -590,8 +632,13 @@ def check_template_against_bench(t: SessionTemplate, bench: Bench, col: _Collect
                                 f"0 (off) to {count}", str(n), code="impossible_step")
         elif kind == "line_outage":
             ref(step.line, "line_branches", (*base, "line"))
-        elif kind == "calibration":
-            ref(step.sensor, "sensors", (*base, "sensor"))
+        elif kind == "calibration" and ref(step.sensor, "sensors", (*base, "sensor")) and step.reference_meter.range:
+            sensor_kind = bench.sensor(step.sensor).kind
+            other = "current" if sensor_kind == "voltage" else "voltage"
+            scratch = _Collector(col.file, col.positions)  # a range of neither kind is reported already
+            if _check_meter_range(step.reference_meter.range, (other,), (), scratch):
+                _check_meter_range(step.reference_meter.range, (sensor_kind,),
+                                   (*base, "reference_meter", "range"), col)
         for j, r in enumerate(step.readings):
             _check_reading_place(r, bench, buses, ends, (*base, "readings", j), col)
 
@@ -632,7 +679,7 @@ def _check_reading_place(r: Any, bench: Bench, buses: Sequence[str], ends: dict[
             col.add((*where, "location"), f'element "{loc.name}" has no end at bus "{loc.bus}"',
                     " or ".join(f"{loc.name}@{b}" for b in ends[loc.name]), repr(r.location), code="location")
             return
-    if q in _SYNC_QUANTITIES:
+    if q in _SYNC_QUANTITIES or not is_registered(q):  # an unknown quantity is reported already
         return
     need_v = q in _VOLTAGE_QUANTITIES or q not in _CURRENT_QUANTITIES
     need_i = q in _CURRENT_QUANTITIES or q not in _VOLTAGE_QUANTITIES

@@ -18,6 +18,30 @@ Path = tuple[str | int, ...]
 _BARE = set("ABCDEFGHIJKLMNOPQRSTUVWXYZabcdefghijklmnopqrstuvwxyz0123456789_-")
 
 
+_ESCAPES = {"b": "\b", "t": "\t", "n": "\n", "f": "\f", "r": "\r", '"': '"', "\\": "\\"}
+
+
+def _unescape(raw: str) -> str:
+    """The value of a one-line basic string's body (TOML 1.0 escapes), so a quoted key ``"\\u00e9"`` is ``é``."""
+    out: list[str] = []
+    i = 0
+    while i < len(raw):
+        c = raw[i]
+        if c != "\\" or i + 1 >= len(raw):
+            out.append(c)
+            i += 1
+            continue
+        e = raw[i + 1]
+        if e in "uU":
+            width = 4 if e == "u" else 8
+            out.append(chr(int(raw[i + 2:i + 2 + width], 16)))
+            i += 2 + width
+        else:
+            out.append(_ESCAPES.get(e, e))
+            i += 2
+    return "".join(out)
+
+
 @dataclass
 class PositionMap:
     """Field path -> (line, column), both 1-based."""
@@ -118,14 +142,14 @@ class _Scanner:
             self.advance(3)
             return out
         self.advance()
-        out = []
-        while self.i < len(self.s) and self.peek() != '"':
+        start = self.i
+        while self.i < len(self.s) and self.peek() not in '"\n':
             if self.peek() == "\\":
                 self.advance()
-            out.append(self.peek())
             self.advance()
+        raw = self.s[start:self.i]
         self.advance()
-        return "".join(out)
+        return _unescape(raw)
 
     def literal_string(self) -> str:
         if self.s.startswith("'''", self.i):

@@ -123,28 +123,67 @@ def problems_from_validation_error(
             message = "missing required field"
             _, field_owner = file_path_of(model, loc[:-1])
             if field_owner is not None:
-                hit = _field_by_key(field_owner, str(loc[-1]))
-                if hit is not None:
-                    expected = _describe_type(hit[1])
+                info = next((i for n, i in field_owner.model_fields.items() if str(loc[-1]) in (n, i.alias)), None)
+                if info is not None:
+                    # quantity fields keep their QuantitySpec in the field's metadata, not in the annotation
+                    expected = _describe_type(typing.Annotated[info.annotation, *info.metadata]
+                                              if info.metadata else info.annotation)
         elif kind == "union_tag_invalid":
             ctx = err.get("ctx", {})
-            message = f'unknown kind {ctx.get("tag")!r}'
+            tag = str(ctx.get("tag"))
+            tags = [t.strip().strip("'") for t in str(ctx.get("expected_tags", "")).split(",")]
+            message = f'unknown kind "{tag}"{did_you_mean(tag, tags)}'
             expected = f"kind one of {ctx.get('expected_tags')}"
             full = (*full, "kind")
             found = ""
         elif kind == "union_tag_not_found":
             message = 'missing "kind"'
             full = (*full, "kind")
+            problems += _unknown_keys_of_union(model, loc, err.get("input"), file, prefix + path, positions)
         elif kind in ("unit", "physical_range"):
             message = err["msg"]
         elif kind == "value_error":
             message = err["msg"].removeprefix("Value error, ")
+            full = (*full, *err.get("ctx", {}).get("at", ()))  # a model check pointing at one of its keys
+            if isinstance(err.get("input"), dict):  # a whole-table check: the table is the finding
+                found = ""
         else:
             message = err["msg"]
         line = positions.line_of(full)
         problems.append(Problem(file, line, full, message, expected, found,
                                 column=positions.column_of(full), code=kind))
     return problems
+
+
+def _unknown_keys_of_union(model: type[BaseModel], loc: tuple[Any, ...], data: Any, file: str, path: Path,
+                           positions: PositionMap) -> list[Problem]:
+    """Keys no member of a tagged union knows: a misspelt ``kind`` is reported as such, not only as missing.
+
+    Without its tag pydantic validates no member, so it reports neither the
+    misspelt key nor the others; the keys known to no member are reported here.
+    """
+    if not isinstance(data, dict):
+        return []
+    tp: Any = model
+    for part in loc:  # walk to the union the loc points at
+        tp = _unwrap(tp)
+        if isinstance(tp, type) and issubclass(tp, BaseModel):
+            hit = _field_by_key(tp, str(part))
+            tp = hit[1] if hit else None
+        elif get_origin(tp) in (list, dict):
+            tp = get_args(tp)[-1]
+        else:
+            return []
+    members = [m for m in _union_members(_unwrap(tp)) if isinstance(m, type) and issubclass(m, BaseModel)]
+    allowed = sorted({info.alias or name for m in members for name, info in m.model_fields.items()})
+    out = []
+    for key in data:
+        if key not in allowed:
+            where = (*path, key)
+            out.append(Problem(file, positions.line_of(where), where,
+                               f'unknown key "{key}"{did_you_mean(str(key), allowed)}',
+                               column=positions.column_of(where), code="extra_forbidden"))
+    return out
 
 
 def _describe_type(tp: Any) -> str:
@@ -164,4 +203,5 @@ def _describe_type(tp: Any) -> str:
         return "a list"
     if get_origin(base) is dict:
         return "a table"
-    return getattr(base, "__name__", str(base))
+    words = {str: "a string", int: "an integer", float: "a number", bool: "true or false"}
+    return words.get(base, getattr(base, "__name__", str(base)))
