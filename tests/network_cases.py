@@ -27,8 +27,8 @@ def random_bench(seed: int) -> tuple[Bench, BenchState, dict[str, float]]:
         common = {"id": f"SRC{k}", "bus": str(rng.choice(buses)), "rating": "1 kVA",
                   "r_internal": f"{rng.uniform(0.1, 2):.6f} ohm", "l_internal": f"{rng.uniform(0.5, 8):.6f} mH"}
         if k == 0:
-            data["sources"].append({**common, "kind": "mains_reference", "mains_voltage": f"{rng.uniform(100, 130):.4f} V",
-                                    "mains_frequency": "60 Hz"})
+            data["sources"].append({**common, "kind": "mains_reference",
+                                    "mains_voltage": f"{rng.uniform(100, 130):.4f} V", "mains_frequency": "60 Hz"})
         else:
             data["sources"].append({**common, "kind": "alternator_set", "emf_rated": f"{rng.uniform(100, 130):.4f} V",
                                     "rated_frequency": "60 Hz", "x_subtransient": "0.5 ohm", "pole_pairs": 2,

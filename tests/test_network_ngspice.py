@@ -90,7 +90,8 @@ def _independent_netlist(bench: Bench, state: BenchState, angles: dict[str, floa
                 mid = f"{br.id}_p{k}_{m}_rl"
                 lines += [f"R{br.id}_{k}_{m} {prev} {mid} {sec.r:.15g}", f"L{br.id}_{k}_{m} {mid} {nxt} {sec.l:.15g}"]
                 if sec.c:
-                    lines += [f"C{br.id}_{k}_{m}a {prev} 0 {sec.c / 2:.15g}", f"C{br.id}_{k}_{m}b {nxt} 0 {sec.c / 2:.15g}"]
+                    lines += [f"C{br.id}_{k}_{m}a {prev} 0 {sec.c / 2:.15g}",
+                              f"C{br.id}_{k}_{m}b {nxt} 0 {sec.c / 2:.15g}"]
                 prev = nxt
     for ld in bench.loads:
         if state.load_step(ld.id) == 0:
@@ -150,8 +151,8 @@ def test_exported_netlists_match_ngspice(seed: int, tmp_path: Path) -> None:
 
 def test_demo_step_netlist_with_droop_roles_matches_ngspice(tmp_path: Path) -> None:
     # the exporter writes solved EMF angles of droop sets; ngspice must reproduce the bus voltages
-    from labkit.files.loader import load_bench, load_template
     from labkit.core.state import states_after_steps
+    from labkit.files.loader import load_bench, load_template
 
     root = Path(__file__).resolve().parent.parent / "session_templates"
     bench = load_bench(root / "demo-bench.toml").bench

@@ -142,7 +142,8 @@ def test_part_without_source_is_de_energized_never_a_crash(demo: Bench) -> None:
     pred = predict_state(demo, state, n_samples=50)
     rows = {(lab.location, lab.quantity): (lab, pred.nominal[k]) for k, lab in enumerate(pred.labels)}
     lab, value = rows[("B3", "v_rms")]
-    assert lab.status == "de-energized" and value == 0.0
+    assert lab.status == "de-energized"
+    assert value == 0.0
     assert "charge" in lab.note  # never labelled safe: capacitance holds charge
     assert ("CB@B3", "i_rms") not in rows
 
@@ -152,7 +153,7 @@ def test_zero_impedance_section_is_a_clear_error_naming_it() -> None:
     data["line_sections"][0].update(r="0 ohm", l="0 mH")
     bad = Bench.model_validate(data)
     state = BenchState(started=frozenset({"REF"}), switches=(("SWR", True),), lines=(("L12", "short"),))
-    with pytest.raises(NetworkError, match='"S1".*zero series impedance'):
+    with pytest.raises(NetworkError, match=r'"S1".*zero series impedance'):
         compile_network(bad, state)
 
 
@@ -176,7 +177,8 @@ def test_tolerance_band_contains_nominal_and_is_reproducible(demo: Bench) -> Non
     a = predict_state(demo, state, n_samples=400, seed=7)
     b = predict_state(demo, state, n_samples=400, seed=7)
     np.testing.assert_array_equal(a.band_low, b.band_low)
-    assert np.all(a.band_low <= a.nominal + 1e-12) and np.all(a.nominal <= a.band_high + 1e-12)
+    assert np.all(a.band_low <= a.nominal + 1e-12)
+    assert np.all(a.nominal <= a.band_high + 1e-12)
     k = next(k for k, lab in enumerate(a.labels) if (lab.location, lab.quantity) == ("LB@B2", "i_rms"))
     assert a.band_high[k] - a.band_low[k] > 0.01 * a.nominal[k]  # a 5 % component tolerance shows
 
