@@ -247,3 +247,40 @@ def test_band_percentiles_equal_numpy_percentile() -> None:
     values[3, 2] = np.nan
     expected = np.nanpercentile(values, BAND_PERCENTILES, axis=0)
     np.testing.assert_allclose(_percentiles(values.copy()), expected, rtol=1e-12)
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_fast_linear_system_equals_the_stacked_solve(seed: int) -> None:
+    from labkit.core.solve import LinearSystem
+
+    bench, state, _ = random_bench(seed)
+    net = compile_network(bench, state)
+    zero = {r.source_id: 0.0 for r in net.sources}
+    ref = solve_network(net, given_angles_deg=zero, harmonics=False).v[0, 0]
+    v = LinearSystem.from_network(net).solve(2 * np.pi * net.frequency_hz)
+    np.testing.assert_allclose(v, ref, rtol=1e-12, atol=1e-12)
+
+
+def test_thevenin_impedance_of_source_and_load_in_parallel(demo: Bench) -> None:
+    # textbook circuit theory: the Thevenin impedance of a source impedance beside a resistor is Zs*R/(Zs+R)
+    from labkit.core.solve import thevenin_impedance
+
+    state = BenchState(started=frozenset({"REF"}), switches=(("SWR", True),), lines=(("L12", "open"),),
+                       loads=())
+    net = compile_network(demo, state)
+    ref = demo.source("REF")
+    zs = ref.r_internal + 2j * np.pi * 60.0 * ref.l_internal
+    assert thevenin_impedance(net, net.bus_node["B1"]) == pytest.approx(zs, rel=1e-12)
+
+
+def test_sync_step_carries_slip_before_closing_and_a_labelled_surge_estimate(demo: Bench) -> None:
+    from labkit.core.predict import predict_template
+
+    template = load_template(ROOT / "lab2-synchronize.toml", demo).template
+    steps = predict_template(demo, template, n_samples=50)
+    sync = next(s for s in steps if s.step_id == "sync-g1").prediction
+    assert sync.value("SYNC1", "slip") == pytest.approx(0.1, abs=1e-9)  # setpoint 60.1 Hz vs the 60 Hz mains
+    k = sync.index("SYNC1", "surge_peak")
+    assert "estimate" in sync.labels[k].note
+    # sqrt(2)|V_across|/|jX'' + Z_th| with |V_across| <= 2V sin(dphi/2) + |dV|: a bound from the field reference §1.5
+    assert 10.0 < sync.nominal[k] < 2 * np.sqrt(2) * 125 * np.sin(np.radians(5)) / 0.6 + 20

@@ -135,13 +135,21 @@ def element_admittances(kind: NDArray, r: NDArray, l: NDArray, c: NDArray, y_fix
     w = np.asarray(omega, dtype=float)
     shape = np.broadcast_shapes(r.shape, l.shape, c.shape, y_fixed.shape, w.shape)
     kind = np.asarray(kind)
-    if kind.ndim > 1:  # per-configuration kinds (a padded batch): evaluate by masks
-        kb = np.broadcast_to(kind, shape)
+    if kind.ndim > 1:  # per-configuration kinds (a padded batch): evaluate each kind on its flat entries
+        kb = np.broadcast_to(kind, shape).ravel()
+        rf, lf, cf = (np.broadcast_to(x, shape).ravel() for x in (r, l, c))
+        wf, yf = np.broadcast_to(w, shape).ravel(), np.broadcast_to(y_fixed, shape).ravel()
+        flat = np.empty(kb.size, dtype=complex)
+        ser, par, fix = np.flatnonzero(kb == 0), np.flatnonzero(kb == 1), np.flatnonzero(kb == 2)
         with np.errstate(divide="ignore", invalid="ignore"):
-            x = w * l - np.where(np.isfinite(c), 1.0 / (w * c), 0.0)
-            y_ser = 1.0 / (r + 1j * x)
-            y_par = np.where(np.isfinite(r), 1.0 / r, 0.0) + 1j * (w * c - np.where(np.isfinite(l), 1.0 / (w * l), 0.0))
-        return np.where(kb == 0, y_ser, np.where(kb == 1, y_par, y_fixed))
+            cs = cf[ser]
+            x = wf[ser] * lf[ser] - np.where(np.isfinite(cs), 1.0 / (wf[ser] * cs), 0.0)
+            flat[ser] = 1.0 / (rf[ser] + 1j * x)
+            rp, lp = rf[par], lf[par]
+            flat[par] = (np.where(np.isfinite(rp), 1.0 / rp, 0.0)
+                         + 1j * (wf[par] * cf[par] - np.where(np.isfinite(lp), 1.0 / (wf[par] * lp), 0.0)))
+        flat[fix] = yf[fix]
+        return flat.reshape(shape)
     out = np.empty(shape, dtype=complex)
 
     def cols(x: NDArray, sel: NDArray) -> NDArray:

@@ -16,9 +16,10 @@ import numpy as np
 from numpy.typing import NDArray
 
 from labkit.core.bench import Bench
+from labkit.core.errors import LabkitError
 from labkit.core.network import Network, NetworkError, compile_network
 from labkit.core.results import RowLabel, quantity_arrays
-from labkit.core.solve import Solution, sample_factors, solve_network
+from labkit.core.solve import Solution, sample_factors, solve_network, thevenin_impedance
 from labkit.core.state import BenchState, apply_step, initial_state, intermediate_states
 from labkit.core.template import SessionTemplate
 
@@ -164,6 +165,7 @@ def predict_template(bench: Bench, template: SessionTemplate, *, n_samples: int 
             try:
                 pre_pred = predict_state(bench, pre, n_samples=n_samples, seed=seed, harmonics=False)
                 pred.merge_rows(pre_pred, {step.switch}, "before closing")
+                _add_surge_estimate(bench, step, pre_pred, pred)
             except NetworkError as exc:
                 pred.warnings.append(f"the state before closing cannot be solved: {exc}")
         for mid in intermediate_states(before, state):
@@ -176,6 +178,38 @@ def predict_template(bench: Bench, template: SessionTemplate, *, n_samples: int 
             pred.rating_flags += _rating_flags(mid_pred, f" while switching ({changed} done first)")
         out.append(StepPrediction(index, step.id, step.kind, state, pred))
     return out
+
+
+def _add_surge_estimate(bench: Bench, step: object, pre: Prediction, pred: Prediction) -> None:
+    """First-cycle surge estimate of closing at the limit set's largest phase difference."""
+    from labkit.core.bench import AlternatorSet
+    from labkit.core.sync import closing_surge_estimate, limit_set
+
+    src = bench.source(step.source)  # type: ignore[attr-defined]
+    switch = bench.switch(step.switch)  # type: ignore[attr-defined]
+    net = pre.network
+    if not isinstance(src, AlternatorSet) or switch.from_bus not in net.bus_node or switch.to_bus not in net.bus_node:
+        return
+    running_bus = switch.to_bus if switch.from_bus == src.bus else switch.from_bus
+    name = step.limits  # type: ignore[attr-defined]
+    if name == "bench" and bench.bench.sync_limits is None:
+        return
+    try:
+        limits = limit_set(name, sync_limits=bench.bench.sync_limits, bench_id=bench.bench.id,
+                           rating_kva=src.rating / 1000.0)
+    except LabkitError as exc:
+        pred.warnings.append(f"no surge estimate: {exc}")
+        return
+    v_in = abs(pre.solution.v[0, 0, net.bus_node[src.bus]])
+    v_run = abs(pre.solution.v[0, 0, net.bus_node[running_bus]])
+    v_across = abs(v_in - v_run * np.exp(1j * np.radians(limits.max_dphi_deg)))
+    estimate = closing_surge_estimate(v_across, src.x_subtransient, thevenin_impedance(net, net.bus_node[running_bus]))
+    peak = float(np.asarray(estimate.peak_a).ravel()[0])
+    pred.labels.append(RowLabel(switch.id, "surge_peak", "energized",
+                                f"estimate at {limits.max_dphi_deg:g} deg ({limits.title}): {estimate.basis}"))
+    pred.nominal = np.append(pred.nominal, peak)
+    pred.band_low = np.append(pred.band_low, peak)
+    pred.band_high = np.append(pred.band_high, peak)
 
 
 def _diff(before: BenchState, mid: BenchState) -> str:

@@ -114,19 +114,7 @@ def quantity_arrays(sol: Solution) -> tuple[list[RowLabel], NDArray[np.float64]]
                 rows.add(bus, f"v_h{h}", np.abs(v[:, k]))
 
     # element ends (current from the bus into the element)
-    end_currents: dict[tuple[str, str], NDArray] = {}
-    for j, e in enumerate(net.elements):
-        if e.owner_table == "sources":
-            continue
-        for bus_name, sign in ((e.bus_a, 1.0), (e.bus_b, -1.0)):
-            if bus_name is None:
-                continue
-            key = (e.owner, bus_name)
-            end_currents[key] = end_currents.get(key, 0) + sign * sol.i_elem[:, :, j]
-    for k, role in enumerate(net.sources):
-        src = bench.source(role.source_id)
-        end_currents[(src.id, src.bus)] = -sol.source_current[:, :, k]
-    end_currents.update(_switch_currents(sol, end_currents))
+    end_currents = end_current_phasors(sol)
 
     for (owner, bus_name), i in end_currents.items():
         v = sol.v[:, :, net.bus_node[bus_name]]
@@ -149,6 +137,29 @@ def quantity_arrays(sol: Solution) -> tuple[list[RowLabel], NDArray[np.float64]]
     return rows.labels, np.stack(rows.values, axis=1) if rows.values else np.zeros((sol.n_samples, 0))
 
 
+def end_current_phasors(sol: Solution, *, warn: bool = True) -> dict[tuple[str, str], NDArray]:
+    """Current phasors (S, H) at every element end ``(owner, bus)``, from the bus into the element (A RMS).
+
+    ``warn`` adds the solution's warning about a loop of closed switches (once per solve: callers that
+    only read the phasors again pass False).
+    """
+    net, bench = sol.network, sol.network.bench
+    end_currents: dict[tuple[str, str], NDArray] = {}
+    for j, e in enumerate(net.elements):
+        if e.owner_table == "sources":
+            continue
+        for bus_name, sign in ((e.bus_a, 1.0), (e.bus_b, -1.0)):
+            if bus_name is None:
+                continue
+            key = (e.owner, bus_name)
+            end_currents[key] = end_currents.get(key, 0) + sign * sol.i_elem[:, :, j]
+    for k, role in enumerate(net.sources):
+        src = bench.source(role.source_id)
+        end_currents[(src.id, src.bus)] = -sol.source_current[:, :, k]
+    end_currents.update(_switch_currents(sol, end_currents, warn=warn))
+    return end_currents
+
+
 def _regulation(sol: Solution, branch_id: str, vs: NDArray, vr: NDArray) -> NDArray:
     """(|Vs|/|A| - |Vr|) / |Vr| with the from-bus as sending end (field-reference §2.1)."""
     from labkit.core.lines import bench_section_values, branch_two_port, position_paths
@@ -161,7 +172,8 @@ def _regulation(sol: Solution, branch_id: str, vs: NDArray, vr: NDArray) -> NDAr
     return (vs / np.abs(a) - vr) / vr
 
 
-def _switch_currents(sol: Solution, end_currents: dict[tuple[str, str], NDArray]) -> dict[tuple[str, str], NDArray]:
+def _switch_currents(sol: Solution, end_currents: dict[tuple[str, str], NDArray], *,
+                     warn: bool = True) -> dict[tuple[str, str], NDArray]:
     """Currents through closed switches from KCL over each group of buses they merge."""
     net = sol.network
     out: dict[tuple[str, str], NDArray] = {}
@@ -179,7 +191,7 @@ def _switch_currents(sol: Solution, end_currents: dict[tuple[str, str], NDArray]
             if bus_name in buses and owner not in {s[0] for s in switches}:
                 inj[buses.index(bus_name)] += i
         # A i_sw = -inj; least squares handles trees exactly (loops of switches: minimum-norm split)
-        if np.linalg.matrix_rank(a) < len(switches):
+        if warn and np.linalg.matrix_rank(a) < len(switches):
             sol.warnings.append("closed switches form a loop (" + ", ".join(s[0] for s in switches)
                                 + "): how the current divides between them is not determined; shown evenly split")
         pinv = np.linalg.pinv(a)
@@ -231,7 +243,7 @@ def _open_switch_rows(sol: Solution, rows: _Rows) -> None:
             rows.add(sw.id, "v_across", np.abs(sol.v[:, 0, na] - sol.v[:, 0, nb]))
 
 
-__all__ = ["RowLabel", "quantity_arrays"]
+__all__ = ["RowLabel", "end_current_phasors", "quantity_arrays"]
 
 
 # quantities that change sign when a current's reference direction is reversed; angles turn by 180 deg

@@ -403,3 +403,89 @@ def element_node_current_into(sol: Solution, element_index: int, node: int) -> N
 
 
 __all__ = ["NEUTRAL", "Solution", "sample_factors", "solve_network", "stacked_solve"]
+
+
+@dataclass
+class LinearSystem:
+    """One configuration prepared for repeated solves: the array-level fast path.
+
+    Everything that does not change between solves (the stamp pattern, the element
+    groups, the source injections) is computed once by :meth:`from_network`;
+    :meth:`solve` then evaluates the admittances, stamps them with one small matmul
+    and solves. Given-EMF mode: each source keeps its compiled EMF (angle 0) unless
+    ``emf`` is passed.
+    """
+
+    n_nodes: int
+    series: NDArray[np.intp]
+    parallel: NDArray[np.intp]
+    fixed: NDArray[np.intp]
+    r: NDArray[np.float64]
+    l: NDArray[np.float64]  # noqa: E741
+    c_inv: NDArray[np.float64]  # 1/C for series elements, C for parallel ones
+    g: NDArray[np.float64]  # 1/R for parallel elements
+    l_inv: NDArray[np.float64]  # 1/L for parallel elements
+    y_fixed: NDArray[np.complex128]
+    stamp: NDArray[np.float64]  # (E, U)
+    positions: NDArray[np.intp]  # (U,) flat positions in the N x N matrix
+    src_node: NDArray[np.intp]
+    src_elem: NDArray[np.intp]
+    emf: NDArray[np.complex128]
+
+    @classmethod
+    def from_network(cls, net: Network) -> LinearSystem:
+        """Prepare a compiled network."""
+        ea = net.element_arrays()
+        kind, a, b = ea["kind"], ea["a"], ea["b"]
+        n = net.n_nodes
+        ga, gb = a >= 0, b >= 0
+        both = ga & gb
+        el = np.arange(a.size)
+        pos = np.concatenate([a[ga] * (n + 1), b[gb] * (n + 1), a[both] * n + b[both], b[both] * n + a[both]])
+        src = np.concatenate([el[ga], el[gb], el[both], el[both]])
+        sign = np.concatenate([np.ones(ga.sum() + gb.sum()), -np.ones(2 * both.sum())])
+        unique, inverse = np.unique(pos, return_inverse=True)
+        stamp = np.zeros((a.size, unique.size))
+        np.add.at(stamp, (src, inverse), sign)
+        with np.errstate(divide="ignore"):
+            c_inv = np.where(kind == 0, np.where(np.isfinite(ea["c"]), 1.0 / ea["c"], 0.0), ea["c"])
+            g = np.where(np.isfinite(ea["r"]) & (kind == 1), 1.0 / ea["r"], 0.0)
+            l_inv = np.where(np.isfinite(ea["l"]) & (kind == 1), 1.0 / ea["l"], 0.0)
+        return cls(n, np.flatnonzero(kind == 0), np.flatnonzero(kind == 1), np.flatnonzero(kind == 2),
+                   ea["r"], ea["l"], c_inv, g, l_inv, ea["y_fixed"], stamp, unique,
+                   np.array([s.node for s in net.sources], dtype=np.intp),
+                   np.array([s.element_index for s in net.sources], dtype=np.intp),
+                   np.array([s.emf_v for s in net.sources], dtype=complex))
+
+    def admittances(self, omega: float) -> NDArray[np.complex128]:
+        """Element admittances at ``omega`` (rad/s)."""
+        y = np.empty(self.r.size, dtype=complex)
+        s, p = self.series, self.parallel
+        y[s] = 1.0 / (self.r[s] + 1j * (omega * self.l[s] - self.c_inv[s] / omega))
+        y[p] = self.g[p] + 1j * (omega * self.c_inv[p] - self.l_inv[p] / omega)
+        y[self.fixed] = self.y_fixed[self.fixed]
+        return y
+
+    def solve(self, omega: float, emf: NDArray[np.complex128] | None = None) -> NDArray[np.complex128]:
+        """Node voltage phasors (N,) at ``omega`` with the sources' EMFs (compiled ones by default)."""
+        y = self.admittances(omega)
+        flat = np.zeros(self.n_nodes * self.n_nodes, dtype=complex)
+        flat[self.positions] = y @ self.stamp
+        inj = np.zeros(self.n_nodes, dtype=complex)
+        np.add.at(inj, self.src_node, (self.emf if emf is None else emf) * y[self.src_elem])
+        return np.linalg.solve(flat.reshape(self.n_nodes, self.n_nodes), inj)
+
+
+def thevenin_impedance(net: Network, node: int, frequency_hz: float | None = None) -> complex:
+    """Thevenin impedance (ohm) of a compiled network seen at ``node``: the node's entry of Y^-1.
+
+    Sources count as their internal impedances (EMFs shorted), as for a surge estimate.
+    """
+    system = LinearSystem.from_network(net)
+    f = net.frequency_hz if frequency_hz is None else frequency_hz
+    y = system.admittances(2 * np.pi * f)
+    flat = np.zeros(system.n_nodes * system.n_nodes, dtype=complex)
+    flat[system.positions] = y @ system.stamp
+    unit = np.zeros(system.n_nodes, dtype=complex)
+    unit[node] = 1.0
+    return complex(np.linalg.solve(flat.reshape(system.n_nodes, system.n_nodes), unit)[node])

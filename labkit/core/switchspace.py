@@ -23,7 +23,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from labkit.core.bench import Bench, LinearLoad
-from labkit.core.network import Network, NetworkError, assemble, compile_network, element_admittances
+from labkit.core.network import Network, NetworkError, compile_network, element_admittances
 from labkit.core.results import quantity_arrays
 from labkit.core.solve import Solution, element_arrays, solve_network, stacked_solve
 from labkit.core.state import BenchState
@@ -75,6 +75,21 @@ class Batch:
     y_fixed: NDArray
     src_node: NDArray  # (C, n_src_max), -1 padding
     src_elem: NDArray
+    stamp_index: NDArray | None = None  # flat (C*N*N) positions of every stamp entry, fixed per batch
+    stamp_source: NDArray | None = None  # flat (C*E) element of each stamp entry
+    stamp_sign: NDArray | None = None
+
+    def __post_init__(self) -> None:
+        c, e = self.a.shape
+        n = self.n_nodes
+        off_m = (np.arange(c) * n * n)[:, None]
+        off_e = (np.arange(c) * e)[:, None] + np.arange(e)[None, :]
+        ga, gb = self.a >= 0, self.b >= 0
+        both = ga & gb
+        self.stamp_index = np.concatenate([(self.a * (n + 1) + off_m)[ga], (self.b * (n + 1) + off_m)[gb],
+                                           (self.a * n + self.b + off_m)[both], (self.b * n + self.a + off_m)[both]])
+        self.stamp_source = np.concatenate([off_e[ga], off_e[gb], off_e[both], off_e[both]])
+        self.stamp_sign = np.concatenate([np.ones(ga.sum() + gb.sum()), -np.ones(2 * both.sum())])
 
 
 def make_batch(networks: Sequence[Network]) -> Batch:
@@ -113,7 +128,11 @@ def solve_batch(batch: Batch, emf: NDArray[np.complex128], frequency_hz: float) 
     omega = 2 * np.pi * frequency_hz
     y_el = element_admittances(batch.kind, batch.r, batch.l, batch.c, batch.y_fixed, omega)
     c, n = y_el.shape[0], batch.n_nodes
-    ymat = assemble(n, batch.a, batch.b, y_el)
+    # the stamp positions are fixed per batch: one gather and two bincounts build every matrix
+    w = y_el.ravel()[batch.stamp_source] * batch.stamp_sign
+    total = c * n * n
+    ymat = (np.bincount(batch.stamp_index, weights=w.real, minlength=total)
+            + 1j * np.bincount(batch.stamp_index, weights=w.imag, minlength=total)).reshape(c, n, n)
     inj = np.zeros((c, n), dtype=complex)
     valid = batch.src_node >= 0
     rows = np.broadcast_to(np.arange(c)[:, None], batch.src_node.shape)

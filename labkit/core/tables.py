@@ -29,24 +29,28 @@ PREDICTION_COLUMNS = {
 }
 
 
+def _strings(values: list[str]) -> pd.api.extensions.ExtensionArray:
+    return pd.array(np.array(values, dtype=object), dtype="string")
+
+
 def prediction_frame(pred: Prediction, step: str = "", step_index: int = -1, kind: str = "") -> pd.DataFrame:
-    """The tidy table of one prediction."""
+    """The tidy table of one prediction (columns and dtypes: :data:`PREDICTION_COLUMNS`)."""
     labels = pred.labels
     n = len(labels)
-    frame = pd.DataFrame({
-        "step": [step] * n,
+    columns = {
+        "step": _strings([step] * n),
         "step_index": np.full(n, step_index, dtype=np.int64),
-        "kind": [kind] * n,
-        "location": [lab.location for lab in labels],
-        "quantity": [lab.quantity for lab in labels],
-        "unit": [quantity(lab.quantity).unit for lab in labels],
-        "predicted": pred.nominal,
-        "band_low": pred.band_low,
-        "band_high": pred.band_high,
-        "status": [lab.status for lab in labels],
-        "note": [lab.note for lab in labels],
-    })
-    return frame.astype(PREDICTION_COLUMNS)
+        "kind": _strings([kind] * n),
+        "location": _strings([lab.location for lab in labels]),
+        "quantity": _strings([lab.quantity for lab in labels]),
+        "unit": _strings([quantity(lab.quantity).unit for lab in labels]),
+        "predicted": np.asarray(pred.nominal, dtype=np.float64),
+        "band_low": np.asarray(pred.band_low, dtype=np.float64),
+        "band_high": np.asarray(pred.band_high, dtype=np.float64),
+        "status": _strings([lab.status for lab in labels]),
+        "note": _strings([lab.note for lab in labels]),
+    }
+    return pd.DataFrame(columns, copy=False)
 
 
 def template_frame(steps: Sequence[StepPrediction]) -> pd.DataFrame:

@@ -20,7 +20,7 @@ import pytest
 from labkit.core.bench import Bench
 from labkit.core.network import assemble, compile_network, element_admittances
 from labkit.core.predict import predict_state
-from labkit.core.solve import element_arrays, solve_network, stacked_solve
+from labkit.core.solve import LinearSystem, solve_network
 from labkit.core.state import BenchState, states_after_steps
 from labkit.core.switchspace import make_batch, neighbours, search, solve_batch
 from labkit.core.tables import prediction_frame
@@ -81,20 +81,14 @@ def _best(fn, repeat: int = 7, number: int = 1) -> float:
 
 
 def _array_level(bench: Bench, state: BenchState) -> dict[str, float]:
+    """The array-level solve of one configuration (prepared once), and the bare np.linalg.solve floor."""
     net = compile_network(bench, state)
-    arr = element_arrays(net)
-    omega = 2 * np.pi * 60.0
-    src = [(r.node, r.element_index, r.emf_v) for r in net.sources]
-
-    def one() -> None:
-        y = element_admittances(arr.kind, arr.r, arr.l, arr.c, arr.y_fixed, omega)
-        ymat = assemble(net.n_nodes, arr.a, arr.b, y)
-        inj = np.zeros((1, net.n_nodes), dtype=complex)
-        for node, j, e in src:
-            inj[0, node] += e * y[0, j]
-        stacked_solve(ymat, inj)
-
-    return {"nodes": net.n_nodes, "array_solve_us": _best(one, number=200) * 1e6}
+    system = LinearSystem.from_network(net)
+    omega = 2 * np.pi * net.frequency_hz
+    ymat = np.eye(net.n_nodes, dtype=complex)
+    rhs = np.ones(net.n_nodes, dtype=complex)
+    return {"nodes": net.n_nodes, "array_solve_us": _best(lambda: system.solve(omega), number=500) * 1e6,
+            "bare_single_solve_us": _best(lambda: np.linalg.solve(ymat, rhs), number=500) * 1e6}
 
 
 def _report(name: str, figures: dict[str, float]) -> None:
