@@ -284,3 +284,14 @@ def test_sync_step_carries_slip_before_closing_and_a_labelled_surge_estimate(dem
     assert "estimate" in sync.labels[k].note
     # sqrt(2)|V_across|/|jX'' + Z_th| with |V_across| <= 2V sin(dphi/2) + |dV|: a bound from the field reference §1.5
     assert 10.0 < sync.nominal[k] < 2 * np.sqrt(2) * 125 * np.sin(np.radians(5)) / 0.6 + 20
+
+
+def test_sweep_of_a_load_bank_equals_solving_each_step(demo: Bench) -> None:
+    from labkit.core.switchspace import sweep
+
+    state = BenchState(started=frozenset({"REF"}), switches=(("SWR", True),), lines=(("L12", "long"),))
+    results = sweep(demo, state, "loads", "RB")
+    assert [v for v, _ in results] == [0, 1, 2, 3, 4]
+    for value, sol in results:
+        exact = solve_network(compile_network(demo, state.with_changes(loads={"RB": value})), harmonics=False)
+        np.testing.assert_allclose(sol.v[0, 0], exact.v[0, 0], rtol=1e-12)

@@ -17,6 +17,7 @@ def _load(args: argparse.Namespace) -> tuple[object, object]:
 
 
 def _cmd_predict(args: argparse.Namespace) -> int:
+    from labkit.core.lines import branch_full_scale_note
     from labkit.core.predict import predict_template
     from labkit.core.tables import template_frame
 
@@ -43,10 +44,14 @@ def _cmd_predict(args: argparse.Namespace) -> int:
                 continue
             for w in s.prediction.warnings:
                 print(f"  WARNING: {w}")
+            for branch_id, position in s.state.lines:
+                note = branch_full_scale_note(bench, branch_id, position)  # type: ignore[arg-type]
+                if note:
+                    print(f"  line: {note}")
             for flag in s.prediction.rating_flags:
                 print(f"  RATING: {flag}")
             part = frame[frame["step"] == s.step_id]
-            print(part[["location", "quantity", "unit", "predicted", "band_low", "band_high", "status"]]
+            print(part[["location", "quantity", "unit", "predicted", "band_low", "band_high", "status", "note"]]
                   .to_string(index=False, float_format=lambda x: f"{x:.6g}"))
     for s in steps:
         if s.prediction is not None and s.prediction.rating_flags and args.format != "table":

@@ -970,3 +970,37 @@ def branch_layout(branch_id: str, from_bus: str, to_bus: str, paths: Sequence[Se
 def position_layout(branch: LineBranch, position: str, values: Mapping[str, SectionValues]) -> BranchLayout:
     """:func:`branch_layout` of a bench branch in one of its positions (``"open"``: no nodes, no sections)."""
     return branch_layout(branch.id, branch.from_bus, branch.to_bus, position_paths(branch, position, values))
+
+
+def branch_full_scale_note(bench: Bench, branch_id: str, position: str) -> str:
+    """What full-scale line a branch in a position stands for, and where X/R or frequency differ.
+
+    Uses the branch's equivalent pi at the bench frequency, scaled by the bench's
+    ``[line_scaling]`` bases; the length is given when its sections carry
+    per-length data of a full-scale line. Empty when the bench has no scaling.
+    """
+    scaling = bench.line_scaling
+    if scaling is None or position == "open":
+        return ""
+    branch = next(b for b in bench.line_branches if b.id == branch_id)
+    values = bench_section_values(bench)
+    f_bench = bench.bench.nominal_frequency
+    omega = 2 * np.pi * f_bench
+    z, ys, yr = branch_two_port(position_paths(branch, position, values), omega).equivalent_pi()
+    z, y_total = complex(np.asarray(z)), complex(np.asarray(ys) + np.asarray(yr))
+    bases = ScalingBases.from_line_scaling(scaling, f_bench)
+    eq = scale_to_full_scale(z.real, z.imag / omega, y_total.imag / omega, bases, g=max(y_total.real, 0.0))
+    text = (f"{branch_id} ({position}) stands for a full-scale line of Z = {complex(eq.z_pu):.4g} pu, "
+            f"Y = {complex(eq.y_pu):.4g} pu")
+    pos = next(p for p in branch.positions if p.name == position)
+    sections = [[bench.section(sid) for sid in path] for path in pos.paths]
+    if all(sec.full_scale is not None for path in sections for sec in path):
+        lengths = {round(sum(sec.full_scale.length for sec in path), 6) for path in sections}  # type: ignore[union-attr]
+        circuits = f"{len(sections)} parallel circuits of " if len(sections) > 1 else ""
+        text += ", " + circuits + " / ".join(f"{km / 1000:.4g} km" for km in sorted(lengths))
+    xr_bench = z.imag / z.real if z.real else float("inf")
+    text += f"; X/R {xr_bench:.3g} on the bench"
+    if abs(bases.frequency_ratio - 1.0) > 1e-9:
+        text += (f"; the bench runs at {f_bench:g} Hz against {scaling.full_scale_frequency:g} Hz full scale, so its "
+                 "reactances differ from the full-scale per-unit values by that ratio")
+    return text

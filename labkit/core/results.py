@@ -12,7 +12,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from labkit.core.conventions import wrap_deg
+from labkit.core.conventions import pf_sense, wrap_deg
 from labkit.core.locations import element_end
 from labkit.core.quantities import quantity
 from labkit.core.solve import Solution
@@ -58,7 +58,7 @@ def _power_rows(rows: _Rows, location: str, v: NDArray, i: NDArray, harmonic: bo
     rows.add(location, "p", p)
     rows.add(location, "q1", s1.imag)
     rows.add(location, "s", s)
-    rows.add(location, "pf", pf)
+    rows.add(location, "pf", pf, note=pf_sense(float(s1.imag[0]), float(s1.real[0])))
     rows.add(location, "phase", phase)
     if harmonic:
         i1 = np.abs(i[:, 0])

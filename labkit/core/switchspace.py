@@ -257,3 +257,23 @@ def search(bench: Bench, intended: BenchState, readings: dict[tuple[str, str], t
         sc, pred = _score(sol, readings)
         confirmed.append(Candidate(cand.changes, cand.state, sc, pred))
     return sorted(confirmed, key=lambda c: (c.score, len(c.changes))) + found[confirm:]
+
+
+def sweep(bench: Bench, state: BenchState, table: str, item_id: str,
+          values: Sequence[object] | None = None) -> list[tuple[object, Solution | None]]:
+    """A load bank through all its steps, or a line branch through all its positions, as one stacked solve.
+
+    ``table`` is ``loads``, ``lines`` or ``switches``. Sources keep the EMF phasors of
+    ``state``'s own solution (exact when the mains reference feeds the bench alone).
+    """
+    items = {(t, k): v for t, k, v in switch_items(bench)}
+    if (table, item_id) not in items:
+        from labkit.core.errors import UnknownNameError, did_you_mean
+
+        known = [k for t, k in items if t == table]
+        msg = f'nothing to sweep: no {table} item "{item_id}"{did_you_mean(item_id, known)}'
+        raise UnknownNameError(msg)
+    chosen = list(values) if values is not None else items[(table, item_id)]
+    base = solve_network(compile_network(bench, state), harmonics=False)
+    states = [_apply(state, [(table, item_id, v)]) for v in chosen]
+    return list(zip(chosen, screen(bench, base, states), strict=True))
