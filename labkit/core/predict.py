@@ -89,28 +89,32 @@ class StepPrediction:
 
 
 def predict_state(bench: Bench, state: BenchState, *, n_samples: int = DEFAULT_SAMPLES, seed: int = DEFAULT_SEED,
-                  harmonics: bool = True) -> Prediction:
-    """Solve one configuration nominally and over tolerance samples."""
+                  harmonics: bool = True, band_locations: set[str] | None = None) -> Prediction:
+    """Solve one configuration nominally and over tolerance samples.
+
+    ``band_locations`` limits the Monte Carlo band to rows at those locations (the
+    places a step reads) plus every ``loading`` row; other rows then carry a NaN band.
+    """
     net = compile_network(bench, state)
     sol = solve_network(net, harmonics=harmonics)
     labels, nominal = quantity_arrays(sol)
     low, high = nominal[0].copy(), nominal[0].copy()
     if n_samples > 0 and net.parameters:
         sol_mc = solve_network(net, sample_factors(net, n_samples, seed), harmonics=harmonics)
-        labels_mc, values = quantity_arrays(sol_mc)
-        if [lab.location + lab.quantity for lab in labels_mc] == [lab.location + lab.quantity for lab in labels]:
-            ok = np.isfinite(values)
-            pct = _percentiles(np.where(ok, values, np.nan))
-            angle = np.array([lab.quantity.endswith("angle") or lab.quantity == "phase" for lab in labels])
-            low = np.where(np.isnan(pct[0]), nominal[0], pct[0])
-            high = np.where(np.isnan(pct[1]), nominal[0], pct[1])
-            # angles near +-180 would wrap: band them around the nominal value instead
-            with np.errstate(invalid="ignore"):
-                spread = np.abs(high - low)
-            wrap = angle & (spread > 180)
-            low, high = np.where(wrap, nominal[0] - 180, low), np.where(wrap, nominal[0] + 180, high)
-    pred = Prediction(labels, nominal[0], np.minimum(low, nominal[0]), np.maximum(high, nominal[0]), net, sol,
-                      list(sol.warnings), [], seed, n_samples)
+        labels_mc, values = quantity_arrays(sol_mc, band_locations)
+        index = {(lab.location, lab.quantity): k for k, lab in enumerate(labels)}
+        rows = np.array([index[(lab.location, lab.quantity)] for lab in labels_mc], dtype=np.intp)
+        pct = _percentiles(np.where(np.isfinite(values), values, np.nan))
+        if band_locations is not None:
+            low, high = np.full_like(low, np.nan), np.full_like(high, np.nan)
+        nom = nominal[0, rows]
+        lo, hi = np.where(np.isnan(pct[0]), nom, pct[0]), np.where(np.isnan(pct[1]), nom, pct[1])
+        # angles near +-180 would wrap: band them around the nominal value instead
+        angle = np.array([lab.quantity.endswith("angle") or lab.quantity == "phase" for lab in labels_mc], dtype=bool)
+        wrap = angle & (np.abs(hi - lo) > 180)
+        low[rows] = np.minimum(np.where(wrap, nom - 180, lo), nom)
+        high[rows] = np.maximum(np.where(wrap, nom + 180, hi), nom)
+    pred = Prediction(labels, nominal[0], low, high, net, sol, list(sol.warnings), [], seed, n_samples)
     pred.rating_flags = _rating_flags(pred, "")
     return pred
 

@@ -29,13 +29,16 @@ class RowLabel:
 
 
 class _Rows:
-    def __init__(self, n_samples: int) -> None:
+    def __init__(self, n_samples: int, locations: set[str] | None = None) -> None:
         self.labels: list[RowLabel] = []
         self.values: list[NDArray] = []
         self.n = n_samples
+        self.locations = locations
 
     def add(self, location: str, name: str, values: NDArray | float, status: str = "energized",
             note: str = "") -> None:
+        if self.locations is not None and location not in self.locations and name != "loading":
+            return
         q = quantity(name)  # every emitted name must be registered
         arr = np.broadcast_to(np.asarray(values, dtype=float), (self.n,)) * q.scale
         self.labels.append(RowLabel(location, name, status, note))
@@ -85,13 +88,16 @@ def _crest_impl(x: NDArray) -> NDArray:
         return np.max(np.abs(wave), axis=1) / rms
 
 
-def quantity_arrays(sol: Solution) -> tuple[list[RowLabel], NDArray[np.float64]]:
-    """Every predicted quantity of a solution: labels and values (S, rows), in the registry's units."""
+def quantity_arrays(sol: Solution, locations: set[str] | None = None) -> tuple[list[RowLabel], NDArray[np.float64]]:
+    """Every predicted quantity of a solution: labels and values (S, rows), in the registry's units.
+
+    With ``locations``, only rows at those locations (and every ``loading`` row, for the rating checks).
+    """
     net = sol.network
     bench = net.bench
     _crest_impl.orders = sol.orders  # type: ignore[attr-defined]
     harmonic = len(sol.orders) > 1
-    rows = _Rows(sol.n_samples)
+    rows = _Rows(sol.n_samples, locations)
     dead_note = "de-energized: no source connected; capacitance may still hold charge"
 
     # buses
