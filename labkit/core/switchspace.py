@@ -78,6 +78,7 @@ class Batch:
     stamp_index: NDArray | None = None  # flat (C*N*N) positions of every stamp entry, fixed per batch
     stamp_source: NDArray | None = None  # flat (C*E) element of each stamp entry
     stamp_sign: NDArray | None = None
+    stamp_starts: NDArray | None = None
 
     def __post_init__(self) -> None:
         c, e = self.a.shape
@@ -86,10 +87,15 @@ class Batch:
         off_e = (np.arange(c) * e)[:, None] + np.arange(e)[None, :]
         ga, gb = self.a >= 0, self.b >= 0
         both = ga & gb
-        self.stamp_index = np.concatenate([(self.a * (n + 1) + off_m)[ga], (self.b * (n + 1) + off_m)[gb],
-                                           (self.a * n + self.b + off_m)[both], (self.b * n + self.a + off_m)[both]])
-        self.stamp_source = np.concatenate([off_e[ga], off_e[gb], off_e[both], off_e[both]])
-        self.stamp_sign = np.concatenate([np.ones(ga.sum() + gb.sum()), -np.ones(2 * both.sum())])
+        index = np.concatenate([(self.a * (n + 1) + off_m)[ga], (self.b * (n + 1) + off_m)[gb],
+                                (self.a * n + self.b + off_m)[both], (self.b * n + self.a + off_m)[both]])
+        source = np.concatenate([off_e[ga], off_e[gb], off_e[both], off_e[both]])
+        sign = np.concatenate([np.ones(ga.sum() + gb.sum()), -np.ones(2 * both.sum())])
+        # sorted by matrix position, so one gather and one segmented sum build every matrix
+        order = np.argsort(index, kind="stable")
+        index, self.stamp_source, self.stamp_sign = index[order], source[order], sign[order]
+        self.stamp_index, starts = np.unique(index, return_index=True)
+        self.stamp_starts = starts
 
 
 def make_batch(networks: Sequence[Network]) -> Batch:
@@ -128,11 +134,11 @@ def solve_batch(batch: Batch, emf: NDArray[np.complex128], frequency_hz: float) 
     omega = 2 * np.pi * frequency_hz
     y_el = element_admittances(batch.kind, batch.r, batch.l, batch.c, batch.y_fixed, omega)
     c, n = y_el.shape[0], batch.n_nodes
-    # the stamp positions are fixed per batch: one gather and two bincounts build every matrix
+    # the stamp positions are fixed per batch: one gather and one segmented sum build every matrix
     w = y_el.ravel()[batch.stamp_source] * batch.stamp_sign
-    total = c * n * n
-    ymat = (np.bincount(batch.stamp_index, weights=w.real, minlength=total)
-            + 1j * np.bincount(batch.stamp_index, weights=w.imag, minlength=total)).reshape(c, n, n)
+    flat = np.zeros(c * n * n, dtype=complex)
+    flat[batch.stamp_index] = np.add.reduceat(w, batch.stamp_starts)
+    ymat = flat.reshape(c, n, n)
     inj = np.zeros((c, n), dtype=complex)
     valid = batch.src_node >= 0
     rows = np.broadcast_to(np.arange(c)[:, None], batch.src_node.shape)
