@@ -123,8 +123,11 @@ def quantity_arrays(sol: Solution, locations: set[str] | None = None) -> tuple[l
     end_currents = end_current_phasors(sol)
 
     for (owner, bus_name), i in end_currents.items():
+        location = element_end(owner, bus_name)
+        if locations is not None and location not in locations:
+            continue  # not asked for: skip the work, not only the row
         v = sol.v[:, :, net.bus_node[bus_name]]
-        _power_rows(rows, element_end(owner, bus_name), v, i, harmonic)
+        _power_rows(rows, location, v, i, harmonic)
 
     # element-level quantities
     p_end = {lab.location: val for lab, val in zip(rows.labels, rows.values, strict=True) if lab.quantity == "p"}
