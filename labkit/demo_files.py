@@ -1,13 +1,13 @@
 """Where the embedded demo files are: the demo bench, its cart and the demo templates.
 
-In a source checkout they are read from ``session_templates/``; in an installed
-package from ``labkit/data/`` (a copy made at build time is not needed: the
-package ships them as package data).
+In a source checkout (and an editable install) they are read from ``session_templates/``;
+a wheel installs the same files as data under ``<prefix>/share/labkit/session_templates``.
 """
 
 from __future__ import annotations
 
-from importlib import resources
+import sys
+import sysconfig
 from pathlib import Path
 
 DEMO_BENCH = "demo-bench.toml"
@@ -18,9 +18,15 @@ DEMO_TEMPLATES = ("lab1-line-and-loads.toml", "lab2-synchronize.toml", "lab3-har
 def demo_folder() -> Path:
     """The folder holding the demo bench, cart and templates."""
     checkout = Path(__file__).resolve().parent.parent / "session_templates"
-    if (checkout / DEMO_BENCH).is_file():
-        return checkout
-    return Path(str(resources.files("labkit") / "data"))
+    candidates = [checkout, Path(sysconfig.get_path("data")) / "share" / "labkit" / "session_templates",
+                  Path(sys.prefix) / "share" / "labkit" / "session_templates"]
+    for folder in candidates:
+        if (folder / DEMO_BENCH).is_file():
+            return folder
+    from labkit.core.errors import LabkitError
+
+    msg = "the demo files were not found; looked in: " + ", ".join(str(c) for c in candidates)
+    raise LabkitError(msg)
 
 
 def demo_path(name: str) -> Path:
