@@ -169,13 +169,21 @@ def end_current_phasors(sol: Solution, *, warn: bool = True) -> dict[tuple[str, 
     return end_currents
 
 
+_SECTION_VALUES: dict[int, tuple[object, dict]] = {}  # per bench object: its sections' values (immutable)
+
+
 def _regulation(sol: Solution, branch_id: str, vs: NDArray, vr: NDArray) -> NDArray:
     """(|Vs|/|A| - |Vr|) / |Vr| with the from-bus as sending end (field-reference §2.1)."""
     from labkit.core.lines import bench_section_values, branch_two_port, position_paths
 
     net = sol.network
     branch = net.bench.branch(branch_id)
-    values = bench_section_values(net.bench)
+    cached = _SECTION_VALUES.get(id(net.bench))
+    if cached is None or cached[0] is not net.bench:
+        if len(_SECTION_VALUES) > 32:
+            _SECTION_VALUES.clear()
+        cached = _SECTION_VALUES[id(net.bench)] = (net.bench, bench_section_values(net.bench))
+    values = cached[1]
     paths = position_paths(branch, net.state.line_position(branch_id), values)
     a = branch_two_port(paths, 2 * np.pi * net.frequency_hz).abcd[..., 0, 0]
     return (vs / np.abs(a) - vr) / vr
