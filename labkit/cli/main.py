@@ -55,6 +55,10 @@ def build_parser() -> argparse.ArgumentParser:
     from labkit.cli.sync import add_sync_parser
 
     add_sync_parser(sub)
+
+    from labkit.cli.report import add_report_parsers
+
+    add_report_parsers(sub)
     return parser
 
 

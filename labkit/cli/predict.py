@@ -86,7 +86,7 @@ def _common(p: argparse.ArgumentParser) -> None:
 
 def add_predict_parsers(sub: argparse._SubParsersAction) -> None:
     """Add ``predict`` and ``netlist`` to the ``labkit`` command."""
-    from labkit.core.predict import DEFAULT_SAMPLES, DEFAULT_SEED
+    from labkit.core.defaults import DEFAULT_SAMPLES, DEFAULT_SEED
 
     p = sub.add_parser("predict", help="predicted readings with tolerance bands for every step")
     _common(p)

@@ -16,16 +16,13 @@ import numpy as np
 from numpy.typing import NDArray
 
 from labkit.core.bench import Bench
+from labkit.core.defaults import BAND_PERCENTILES, DEFAULT_SAMPLES, DEFAULT_SEED
 from labkit.core.errors import LabkitError
 from labkit.core.network import Network, NetworkError, compile_network
 from labkit.core.results import RowLabel, quantity_arrays
 from labkit.core.solve import Solution, sample_factors, solve_network, thevenin_impedance
 from labkit.core.state import BenchState, apply_step, initial_state, intermediate_states
 from labkit.core.template import SessionTemplate
-
-DEFAULT_SEED = 1459
-DEFAULT_SAMPLES = 2000
-BAND_PERCENTILES = (5.0, 95.0)
 
 
 @dataclass
