@@ -59,6 +59,14 @@ def build_parser() -> argparse.ArgumentParser:
     from labkit.cli.report import add_report_parsers
 
     add_report_parsers(sub)
+
+    from labkit.cli.lab import add_lab_parsers
+
+    add_lab_parsers(sub)
+
+    from labkit.cli.archive import add_archive_parsers
+
+    add_archive_parsers(sub)
     return parser
 
 

@@ -108,7 +108,8 @@ def predict_state(bench: Bench, state: BenchState, *, n_samples: int = DEFAULT_S
         lo, hi = np.where(np.isnan(pct[0]), nom, pct[0]), np.where(np.isnan(pct[1]), nom, pct[1])
         # angles near +-180 would wrap: band them around the nominal value instead
         angle = np.array([lab.quantity.endswith("angle") or lab.quantity == "phase" for lab in labels_mc], dtype=bool)
-        wrap = angle & (np.abs(hi - lo) > 180)
+        with np.errstate(invalid="ignore"):  # NaN rows (a pf of no current) never wrap
+            wrap = angle & (np.abs(hi - lo) > 180)
         low[rows] = np.minimum(np.where(wrap, nom - 180, lo), nom)
         high[rows] = np.maximum(np.where(wrap, nom + 180, hi), nom)
     pred = Prediction(labels, nominal[0], low, high, net, sol, list(sol.warnings), [], seed, n_samples)

@@ -101,7 +101,7 @@ EVENT_COLUMNS: tuple[Column, ...] = (
     _c("by", "string", "who"),
     _c("role", "string", "student, ta or instructor"),
     _c("event", "string", "state:open, state:submitted, state:closed, step:forward, step:back, step:skip, "
-                          "anchor, calibration, note"),
+                          "anchor, calibration, note, merge:conflict"),
     _c("step_id", "string", "step concerned, or empty", required=False),
     _c("detail", "string", "JSON detail (reason of a skip, calibration corrections, as-found values)",
        required=False),

@@ -8,6 +8,9 @@ Guarantees every backend gives:
   so the caller can keep the entered value on screen marked "not recorded";
 - rows are never updated or deleted; a correction is a new row (see ``schema.py``);
 - several processes may write one archive at once.
+
+``pandas`` is imported for type checking only, so that a recording process that only appends
+starts without loading it.
 """
 
 from __future__ import annotations
@@ -15,11 +18,12 @@ from __future__ import annotations
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Protocol
-
-import pandas as pd
+from typing import TYPE_CHECKING, Any, Protocol
 
 from labkit.core.errors import LabkitError
+
+if TYPE_CHECKING:
+    import pandas as pd
 
 
 class ArchiveError(LabkitError, RuntimeError):
@@ -28,6 +32,10 @@ class ArchiveError(LabkitError, RuntimeError):
 
 class NotRecordedError(ArchiveError):
     """A write that did not commit (disk full, read-only, locked too long); nothing was stored."""
+
+
+class InvalidRowError(NotRecordedError, ValueError):
+    """A row that does not fit its table's schema (missing, mistyped or unknown column); nothing was stored."""
 
 
 @dataclass
@@ -55,6 +63,9 @@ class Archive(Protocol):
     def append_reading(self, reading: Mapping[str, Any]) -> Mapping[str, Any]:
         """Append a reading row (``READING_COLUMNS`` less ``seq`` and ``recorded_at``); return the committed row."""
 
+    def append_readings(self, readings: Sequence[Mapping[str, Any]]) -> list[Mapping[str, Any]]:
+        """Append several readings in one transaction: all are committed, or none (imports)."""
+
     def store_capture(self, session_id: str, name: str, data: bytes) -> str:
         """Store a capture file (compressed) with its session; return its id (content hash)."""
 
@@ -66,6 +77,9 @@ class Archive(Protocol):
 
     def readings(self, session_id: str | None = None, *, latest_only: bool = False) -> pd.DataFrame:
         """Reading rows (``READING_COLUMNS`` dtypes), all revisions unless ``latest_only``."""
+
+    def competing_readings(self, session_id: str | None = None) -> pd.DataFrame:
+        """Corrections that lost a merge race (``READING_COLUMNS`` plus ``source_file``), kept for the TA."""
 
     def events(self, session_id: str | None = None) -> pd.DataFrame:
         """Event rows (``EVENT_COLUMNS``)."""
