@@ -15,7 +15,7 @@ from pathlib import Path
 import pytest
 
 PACKAGE = Path(__file__).resolve().parent.parent / "labkit"
-FRONT_ENDS = ("labkit.cli", "labkit.report", "labkit.widgets")
+FRONT_ENDS = ("labkit.cli", "labkit.report", "labkit.widgets", "labkit.lab")
 MIDDLE = ("labkit.files", "labkit.captures", "labkit.logbook", "labkit.session")
 WIDGET_LIBS = ("ipywidgets", "bqplot", "traitlets", "IPython")
 
