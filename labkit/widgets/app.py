@@ -12,6 +12,7 @@ from typing import Any
 import ipywidgets as w
 
 from labkit.core.errors import LabkitError
+from labkit.widgets.overview import OverviewView
 from labkit.widgets.planner import PlannerView
 from labkit.widgets.review import ReviewView
 from labkit.widgets.runner_view import RunnerView
@@ -19,7 +20,7 @@ from labkit.widgets.style import style_html
 from labkit.widgets.text import esc, message
 from labkit.widgets.workspace import Workspace
 
-TAB_TITLES = ("Plan", "Bench session", "Review")
+TAB_TITLES = ("Plan", "Bench session", "Review", "Section overview")
 
 
 class LabApp:
@@ -38,7 +39,9 @@ class LabApp:
         self.runner_view = RunnerView(workspace, self.progress)
         self.planner = PlannerView(workspace, self._started, self.progress)
         self.review = ReviewView(workspace, self.resume, self.progress)
-        self.tabs = w.Tab(children=[self.planner.widget, self.runner_view.widget, self.review.widget])
+        self.overview = OverviewView(workspace)
+        self.tabs = w.Tab(children=[self.planner.widget, self.runner_view.widget, self.review.widget,
+                                    self.overview.widget])
         for k, title in enumerate(TAB_TITLES):
             self.tabs.set_title(k, title)
         self.tabs.add_class("lk-tabs")
