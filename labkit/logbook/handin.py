@@ -53,8 +53,6 @@ _SESSION_SECTION = [c.name for c in TABLES["sessions"]].index("section")
 
 def write_hand_in(archive: SQLiteArchive, path: Path, session_ids: Sequence[str] | None = None) -> Path:
     """Write the hand-in file ``path`` (replaced atomically if it exists); return it."""
-    from labkit.logbook.sqlite import SQLiteArchive
-
     own = getattr(archive, "path", None)  # other backends (a server database) have no file
     if own is not None and path.exists() and path.resolve() == Path(own).resolve():
         msg = f"{path}: the hand-in would replace the archive itself; choose another file name"
@@ -67,6 +65,16 @@ def write_hand_in(archive: SQLiteArchive, path: Path, session_ids: Sequence[str]
             msg = f"{archive.path}: no session {', '.join(missing)} to hand in"
             raise ArchiveError(msg)
         data = _collect(conn, chosen)
+    return write_collected(path, data)
+
+
+def write_collected(path: Path, data: dict[str, list[tuple[Any, ...]]]) -> Path:
+    """Write hand-in rows already collected (as :func:`_collect` gives them) to ``path``, atomically; return it.
+
+    Other backends (the server archive) collect their rows themselves and write the file here.
+    """
+    from labkit.logbook.sqlite import SQLiteArchive
+
     if not path.parent.is_dir():
         msg = f"{path}: the folder {path.parent} does not exist"
         raise ArchiveError(msg)

@@ -26,6 +26,7 @@ message shows the URL with its password replaced (:func:`redact_url`).
 from __future__ import annotations
 
 import hashlib
+import json
 import threading
 import zlib
 from collections.abc import Callable, Iterator, Mapping, Sequence
@@ -37,7 +38,7 @@ from typing import TYPE_CHECKING, Any, TypeVar
 from urllib.parse import urlsplit, urlunsplit
 
 from labkit.logbook.layout import q
-from labkit.logbook.rows import TABLES, ns_to_datetime, public_row, row_hash, storage_row
+from labkit.logbook.rows import CONFLICT_EVENT, TABLES, ns_to_datetime, public_row, row_hash, storage_row
 from labkit.logbook.schema import FORMAT_VERSION, READING_COLUMNS, ROLES
 from labkit.logbook.storage import ArchiveError, InvalidRowError, MergeReport, NotRecordedError
 
@@ -387,6 +388,26 @@ class PostgresArchive:
             except self._psycopg.Error as exc:
                 raise self._error(exc, what, writing=True) from None
 
+    def _write_statement(self, sql: str, params: Sequence[Any], what: str) -> tuple[Any, ...]:
+        """Run ONE statement as its own implicit transaction (autocommit); the row it returns.
+
+        One round trip instead of BEGIN, statement, COMMIT: the server commits the implicit
+        transaction (``synchronous_commit = on``: the WAL is flushed) before it reports the
+        statement done, and psycopg returns only then, so the row returned here is committed.
+        A failed statement (or commit) leaves nothing behind and raises, as :meth:`_write`.
+        """
+        with self._lock:
+            try:
+                conn = self._connection
+                if not conn.autocommit or conn.info.transaction_status != self._psycopg.pq.TransactionStatus.IDLE:
+                    with conn.transaction():  # inside someone's transaction: keep its all-or-nothing
+                        return tuple(conn.execute(sql, params).fetchone())
+                return tuple(conn.execute(sql, params).fetchone())
+            except ArchiveError:
+                raise
+            except self._psycopg.Error as exc:
+                raise self._error(exc, what, writing=True) from None
+
     def _read(self, sql: str, params: Sequence[Any] = ()) -> list[tuple[Any, ...]]:
         with self._lock:
             try:
@@ -439,18 +460,22 @@ class PostgresArchive:
     def append_event(self, event: Mapping[str, Any]) -> dict[str, Any]:
         """Append an event; ``seq``, ``at`` and ``by`` (and ``role``, from the membership) are the server's."""
         values = storage_row("events", {"by": self.login, **event})
-        what = f"event {values['event']}"
-        row = self._write(lambda conn: self._insert_event(conn, values, None, ""), what)
-        return public_row("events", row)
+        sql, params = self._event_statement(values, None, "")
+        row = self._write_statement(sql, params, f"event {values['event']}")
+        return public_row("events", dict(zip([c.name for c in TABLES["events"]], row, strict=True)))
 
-    def _insert_event(self, conn: psycopg.Connection, values: Mapping[str, Any], origin: dict[str, Any] | None,
-                      pushed_from: str) -> dict[str, Any]:
+    @staticmethod
+    def _event_statement(values: Mapping[str, Any], origin: dict[str, Any] | None,
+                         pushed_from: str) -> tuple[str, list[Any]]:
         sql, names = _insert_sql("events", ("content_sha256", "origin", "pushed_from"), skip=("seq", "at", "by"))
         digest = origin["row_sha256"] if origin else content_hash("events", {**values, "seq": 0, "at": 0})
         params = [values[n] for n in names[:-3]]
-        cur = conn.execute(sql + f" RETURNING {_select_list('events')}", [*params, digest, _json(origin),
-                                                                          pushed_from])
-        return dict(zip([c.name for c in TABLES["events"]], cur.fetchone(), strict=True))
+        return sql + f" RETURNING {_select_list('events')}", [*params, digest, _json(origin), pushed_from]
+
+    def _insert_event(self, conn: psycopg.Connection, values: Mapping[str, Any], origin: dict[str, Any] | None,
+                      pushed_from: str) -> dict[str, Any]:
+        sql, params = self._event_statement(values, origin, pushed_from)
+        return dict(zip([c.name for c in TABLES["events"]], conn.execute(sql, params).fetchone(), strict=True))
 
     def append_reading(self, reading: Mapping[str, Any]) -> dict[str, Any]:
         """Append one reading; return the committed row (``seq``, ``recorded_at``, ``recorded_by`` the server's)."""
@@ -470,14 +495,15 @@ class PostgresArchive:
         if not checked:
             return []
         what = f"reading {checked[0]['reading_id']}" if len(checked) == 1 else f"{len(checked)} readings"
+        if len(checked) == 1 and not checked[0]["capture_id"]:  # the common case: one statement, one round trip
+            sql, params = self._reading_statement(checked[0], None, "")
+            row = self._write_statement(sql, params, what)
+            return [public_row("readings", dict(zip([c.name for c in READING_COLUMNS], row, strict=True)))]
         rows = self._write(lambda conn: [self._insert_reading(conn, v, None, "") for v in checked], what)
         return [public_row("readings", r) for r in rows]
 
     def _insert_reading(self, conn: psycopg.Connection, values: Mapping[str, Any], origin: dict[str, Any] | None,
                         pushed_from: str) -> dict[str, Any]:
-        sql, names = _insert_sql("readings", ("content_sha256", "origin", "pushed_from"),
-                                 skip=("seq", "recorded_at", "recorded_by"))
-        params = [values[n] for n in names[:-3]]
         if values["capture_id"]:
             found = conn.execute("SELECT 1 FROM labkit.captures WHERE session_id = %s AND capture_id = %s",
                                  (values["session_id"], values["capture_id"])).fetchone()
@@ -485,9 +511,18 @@ class PostgresArchive:
                 msg = (f"reading {values['reading_id']} not recorded: capture_id {values['capture_id']!r} is not "
                        f"stored with session {values['session_id']}")
                 raise InvalidRowError(msg)
-        cur = conn.execute(sql + f" RETURNING {_select_list('readings')}",
-                           [*params, content_hash("readings", values), _json(origin), pushed_from])
-        return dict(zip([c.name for c in READING_COLUMNS], cur.fetchone(), strict=True))
+        sql, params = self._reading_statement(values, origin, pushed_from)
+        return dict(zip([c.name for c in READING_COLUMNS], conn.execute(sql, params).fetchone(), strict=True))
+
+    @staticmethod
+    def _reading_statement(values: Mapping[str, Any], origin: dict[str, Any] | None,
+                           pushed_from: str) -> tuple[str, list[Any]]:
+        """The INSERT ... RETURNING of one reading (seq, recorded_at and recorded_by left to the server's trigger)."""
+        sql, names = _insert_sql("readings", ("content_sha256", "origin", "pushed_from"),
+                                 skip=("seq", "recorded_at", "recorded_by"))
+        params = [values[n] for n in names[:-3]]
+        return (sql + f" RETURNING {_select_list('readings')}",
+                [*params, content_hash("readings", values), _json(origin), pushed_from])
 
     def store_capture(self, session_id: str, name: str, data: bytes) -> str:
         """Store a capture file (zlib-compressed) with its session; return its id (SHA-256 of the bytes)."""
@@ -644,10 +679,60 @@ class PostgresArchive:
 
     # -- hand-in, push, merge, purge, check ------------------------------------------------------------------------
     def hand_in(self, path: str | Path, session_ids: Sequence[str] | None = None) -> Path:
-        """Write the given sessions (all readable ones by default) to one hand-in file (SQLite)."""
-        from labkit.logbook.handin import write_hand_in
+        """Write the given sessions (all this login may read by default) to one hand-in file (SQLite).
 
-        return write_hand_in(self, Path(path), session_ids)
+        The rows are read in one REPEATABLE READ snapshot, in the storage form of the SQLite layout
+        (datetimes as integer ns), each with its ``row_sha256`` computed over the row as the server
+        holds it (server ``seq``, time and recorder), so any SQLite archive can merge the file. Readings
+        go in order of session, ``seq`` and arrival (a revision after the one it corrects); the roster
+        entries are those of the sessions' sections that this login may read.
+        """
+        from labkit.logbook.handin import write_collected
+
+        path = Path(path)
+        with self.read_transaction() as conn:
+            known = [r[0] for r in conn.execute("SELECT session_id FROM labkit.sessions "
+                                                "ORDER BY created_at, session_id")]
+            chosen = known if session_ids is None else list(dict.fromkeys(session_ids))
+            missing = [s for s in chosen if s not in set(known)]
+            if missing:
+                msg = f"{self.display}: no session {', '.join(missing)} that login {self.login} may hand in"
+                raise ArchiveError(msg)
+            data = self._collect_hand_in(conn, chosen)
+        return write_collected(path, data)
+
+    @staticmethod
+    def _collect_hand_in(conn: psycopg.Connection, session_ids: list[str]) -> dict[str, list[tuple[Any, ...]]]:
+        def hashed(table: str, rows: list[Any]) -> list[tuple[Any, ...]]:
+            return [(*r, row_hash(table, tuple(r))) for r in rows]
+
+        ids = list(session_ids)
+        data: dict[str, list[tuple[Any, ...]]] = {}
+        data["sessions"] = hashed("sessions", conn.execute(
+            f"SELECT {_select_list('sessions')} FROM labkit.sessions WHERE session_id = ANY(%s) "
+            "ORDER BY created_at, session_id", (ids,)).fetchall())
+        data["readings"] = hashed("readings", conn.execute(
+            f"SELECT {_select_list('readings')} FROM labkit.readings WHERE session_id = ANY(%s) "
+            "ORDER BY session_id, seq, id", (ids,)).fetchall())
+        data["events"] = hashed("events", conn.execute(
+            f"SELECT {_select_list('events')} FROM labkit.events WHERE session_id = ANY(%s) "
+            "ORDER BY session_id, seq", (ids,)).fetchall())
+        section_at = [c.name for c in TABLES["sessions"]].index("section")
+        sections = sorted({r[section_at] for r in data["sessions"]})
+        data["roster"] = hashed("roster", conn.execute(
+            f"SELECT {_select_list('roster')} FROM labkit.roster WHERE section = ANY(%s) ORDER BY participant_id",
+            (sections,)).fetchall())
+        data["captures"] = [(sid, cid, name, codec, int(size), bytes(blob)) for sid, cid, name, codec, size, blob
+                            in conn.execute("SELECT session_id, capture_id, name, codec, size, data FROM "
+                                            "labkit.captures WHERE session_id = ANY(%s) ORDER BY session_id, "
+                                            "capture_id", (ids,))]
+        n = len(READING_COLUMNS)
+        data["competing_readings"] = [
+            (*r[:n], row_hash("readings", tuple(r[:n])), r[n], r[n + 1]) for r in conn.execute(
+                f"SELECT {_select_list('readings')}, source_file, "
+                "(extract(epoch FROM merged_at) * 1000000)::bigint * 1000 FROM labkit.competing_readings "
+                "WHERE session_id = ANY(%s) ORDER BY id", (ids,))]
+        return data
 
     def merge(self, paths: Sequence[str | Path]) -> MergeReport:
         """Push several hand-in files (each in its own transaction); one combined report."""
@@ -768,8 +853,10 @@ class PostgresArchive:
         ident = f"reading {values['reading_id']} revision {values['revision']}"
         if conn.execute("SELECT 1 FROM labkit.competing_readings WHERE reading_id = %s AND revision < %s "
                         "AND revision > 0", (values["reading_id"], values["revision"])).fetchone():
-            self._keep_competing(conn, values, file_sha, path.name)  # a later revision of a competing row
-            report.competing_corrections.append(f"{path.name}: {ident}: follows a competing correction; kept aside")
+            if self._keep_competing(conn, values, file_sha, path.name):  # a later revision of a competing row
+                self._conflict_event(conn, values, None, path.name)
+                report.competing_corrections.append(
+                    f"{path.name}: {ident}: follows a competing correction; kept aside")
             return
         found = conn.execute("SELECT content_sha256 FROM labkit.readings WHERE reading_id = %s AND revision = %s",
                              (values["reading_id"], values["revision"])).fetchone()
@@ -780,8 +867,10 @@ class PostgresArchive:
             if values["revision"] == 0:
                 msg = f"{ident} differs from the server's first record"
                 raise _Refused(msg)
-            self._keep_competing(conn, values, file_sha, path.name)
-            report.competing_corrections.append(f"{path.name}: {ident}: a competing correction, kept for the TA")
+            if self._keep_competing(conn, values, file_sha, path.name):
+                self._conflict_event(conn, values, found[0], path.name)
+                report.competing_corrections.append(
+                    f"{path.name}: {ident}: a competing correction, kept for the TA")
             return
         origin = {"seq": values["seq"], "recorded_at": values["recorded_at"], "recorded_by": values["recorded_by"]}
         try:
@@ -790,14 +879,25 @@ class PostgresArchive:
             raise _Refused(str(exc)) from None
         report.merged_rows += 1
 
+    def _conflict_event(self, conn: psycopg.Connection, values: Mapping[str, Any], kept: str | None,
+                        file: str) -> None:
+        """Flag a competing correction in its session's log (a ``merge:conflict`` event, as the SQLite merge)."""
+        detail = json.dumps({"reading_id": values["reading_id"], "revision": int(values["revision"]),
+                             "kept_sha256": kept, "competing_sha256": content_hash("readings", values),
+                             "file": file}, sort_keys=True)
+        event = storage_row("events", {"session_id": values["session_id"], "by": self.login, "role": "ta",
+                                       "event": CONFLICT_EVENT, "step_id": values["step_id"], "detail": detail})
+        self._insert_event(conn, event, None, "")
+
     @staticmethod
-    def _keep_competing(conn: psycopg.Connection, values: Mapping[str, Any], file_sha: str, source: str) -> None:
+    def _keep_competing(conn: psycopg.Connection, values: Mapping[str, Any], file_sha: str, source: str) -> bool:
         names = [c.name for c in READING_COLUMNS] + ["content_sha256", "origin", "pushed_from", "source_file"]
         sql = (f"INSERT INTO labkit.competing_readings ({', '.join(q(n) for n in names)}) "
                f"VALUES ({', '.join(['%s'] * len(names))}) ON CONFLICT DO NOTHING")
         row = [_param(values[c.name], c.dtype) for c in READING_COLUMNS]
         origin = {"seq": values["seq"], "recorded_at": values["recorded_at"], "recorded_by": values["recorded_by"]}
-        conn.execute(sql, [*row, content_hash("readings", values), _json(origin), file_sha, source])
+        cur = conn.execute(sql, [*row, content_hash("readings", values), _json(origin), file_sha, source])
+        return cur.rowcount == 1  # 0: kept aside by an earlier push already
 
     def purge_session(self, session_id: str, reason: str) -> int:
         """Remove a whole session (personal data) through the instructor-only purge function; the audit log id."""

@@ -2,8 +2,9 @@
 
 ``python tests/reliability/writer.py ARCHIVE SESSION_ID COUNT [EVENT_EVERY] [TAG]`` appends COUNT
 readings (invented demo data) to one session and prints ``ack READING_ID`` on stdout, flushed, only
-AFTER :meth:`SQLiteArchive.append_reading` has returned; every EVENT_EVERY readings it also appends
-an event (which shares ``seq``) and every 7th reading after the first is followed by a correction of
+AFTER ``append_reading`` has returned (ARCHIVE is a file path or a ``postgresql://`` URL, opened
+by :func:`labkit.logbook.open.open_archive` as every front end opens it); every EVENT_EVERY readings
+it also appends an event (which shares ``seq``) and every 7th reading after the first is followed by a correction of
 the previous one (acknowledged as ``ack READING_ID:REVISION``). A :class:`NotRecordedError` or any
 other error ends the process with exit code 3 and the message on stderr.
 
@@ -18,7 +19,7 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 
-from labkit.logbook.sqlite import SQLiteArchive
+from labkit.logbook.open import open_archive
 
 
 def main(argv: list[str]) -> int:
@@ -28,7 +29,7 @@ def main(argv: list[str]) -> int:
     tag = argv[4] if len(argv) > 4 else "w"
     out = sys.stdout
     try:
-        archive = SQLiteArchive(path)
+        archive = open_archive(path)
         previous = None
         for k in range(count):
             row = {
