@@ -105,3 +105,27 @@ def test_import_all_or_nothing(laptop: tuple, tmp_path: Path, capsys: pytest.Cap
     assert "3 readings recorded" in capsys.readouterr().out
     with SQLiteArchive(path, read_only=True) as archive:
         assert len(archive.readings()) == 9
+
+
+def test_import_applies_the_typed_reading_checks(laptop: tuple, tmp_path: Path,
+                                                 capsys: pytest.CaptureFixture) -> None:
+    # the unit rules of typed entry (labkit.core.units): a prefix case slip and a decimal comma are refused on
+    # import too, and an entered text that does not read as the recorded value is caught
+    path, sid = laptop
+    cases = {"slip": {"entered": "228.5 MV", "measured": 228.5},
+             "comma": {"entered": "228,5 V", "measured": 228.5},
+             "mismatch": {"entered": "228.5 V", "measured": 22.85},
+             "absurd": {"entered": "", "measured": 1e30}}
+    for name, change in cases.items():
+        rows = [reading_row(sid, 0), reading_row(sid, 1, **change)]
+        bad = tmp_path / f"{name}.csv"
+        with bad.open("w", newline="") as handle:
+            writer = csv.DictWriter(handle, fieldnames=list(rows[0]))
+            writer.writeheader()
+            writer.writerows(rows)
+        assert run("import", path, bad) == 1, name
+        err = capsys.readouterr().err
+        assert "nothing recorded" in err
+        assert f"{name}.csv:3:" in err, err
+    with SQLiteArchive(path, read_only=True) as archive:
+        assert len(archive.readings()) == 6  # the laptop fixture's rows only

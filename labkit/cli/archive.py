@@ -133,15 +133,16 @@ def run_export(args: argparse.Namespace) -> int:
 
 
 def run_import(args: argparse.Namespace) -> int:
-    """``labkit import``: schema checks plus registered quantity and unit; all rows or none."""
+    """``labkit import``: the checks of typed readings (schema, quantity and unit, values); all rows or none."""
     from labkit.core.errors import FileValidationError
-    from labkit.logbook.exchange import check_quantity, import_readings
+    from labkit.logbook.exchange import import_readings
     from labkit.logbook.sqlite import SQLiteArchive
     from labkit.logbook.storage import ArchiveError
+    from labkit.session.importing import validate_imported
 
     try:
         with SQLiteArchive(args.archive, create=False) as archive:
-            rows = import_readings(args.file, archive, validate=check_quantity, format=args.format)
+            rows = import_readings(args.file, archive, validate=validate_imported, format=args.format)
     except FileValidationError as exc:
         return _fail("import", f"nothing recorded; {exc}")
     except ArchiveError as exc:
