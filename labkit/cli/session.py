@@ -48,7 +48,7 @@ def _plan_mistakes(runner: Any, rng: Any) -> dict[tuple[int, int], str]:
     """Pick, with the seed, one reading of the template for each kind of mistake it can happen to."""
     eligible: dict[str, list[tuple[int, int]]] = {m: [] for m in MISTAKES}
     for i, step in enumerate(runner.template.steps):
-        if step.kind == "source_start":
+        if step.kind in ("source_start", "calibration"):  # anchors and calibrations are taken carefully
             continue
         for j, spec in enumerate(step.readings):
             bus_like = spec.location in runner.bench.bus_names

@@ -27,7 +27,7 @@ Captures and the simulated bench
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
@@ -45,6 +45,7 @@ if TYPE_CHECKING:
     from labkit.core.predict import Prediction
     from labkit.core.template import ReadingSpec
     from labkit.core.waveform import WaveformAnalysis
+    from labkit.session.calibration import SensorCalibration
 
 FORMS = ("rms", "peak", "peak_to_peak", "average")
 FORM_FACTOR_SINE = math.pi / (2.0 * math.sqrt(2.0))
@@ -102,6 +103,9 @@ class ParsedReading:
         Id of the stored capture it came from, or empty.
     notes
         Anything worth showing with the echo (a conversion by a distorted wave's crest factor).
+    calibration
+        At a calibration step: the sensor's calibration this reading comes with (recorded as a
+        ``calibration`` event when the reading is recorded), see :mod:`labkit.session.calibration`.
     """
 
     step_index: int
@@ -119,6 +123,7 @@ class ParsedReading:
     sensor: str = ""
     capture_id: str = ""
     notes: list[str] = field(default_factory=list)
+    calibration: SensorCalibration | None = None
 
 
 # -- waveform shape from a prediction -------------------------------------------------------------------
@@ -331,7 +336,8 @@ class ChannelFault:
 
 def simulated_capture(pred: Prediction, bench: Bench, spec: ReadingSpec, *, seed: int, snr_db: float = 50.0,
                       gain_error: float = 0.002, cycles: int = 12, sample_rate: float = 10_000.0,
-                      faults: dict[str, ChannelFault] | None = None) -> Capture:
+                      faults: dict[str, ChannelFault] | None = None,
+                      sensor_gain_errors: Mapping[str, float] | None = None) -> Capture:
     """A capture of the channels ``spec`` needs, synthesized from the prediction's nominal solution.
 
     Parameters
@@ -354,6 +360,9 @@ def simulated_capture(pred: Prediction, bench: Bench, spec: ReadingSpec, *, seed
         Hz.
     faults
         Channel name -> a deliberate fault (see :func:`channels_for` for the names).
+    sensor_gain_errors
+        Sensor id -> that sensor's own relative gain error, used instead of ``gain_error`` for
+        its channels (a sensor that needs calibrating).
     """
     from labkit.captures.simulate import ChannelSpec, SimulatedBench
 
@@ -377,7 +386,9 @@ def simulated_capture(pred: Prediction, bench: Bench, spec: ReadingSpec, *, seed
         sign = 1.0 if rng.random() < 0.5 else -1.0
         spectrum = tuple((int(h), complex(x) * fault.gain) for h, x in zip(orders, phasors, strict=True)
                          if h * frequency < 0.45 * sample_rate)
-        specs[name] = ChannelSpec(spectrum, kind=kind, location=loc, snr_db=snr_db, gain_error=sign * gain_error)
+        own = (sensor_gain_errors or {}).get(sensor_id)
+        specs[name] = ChannelSpec(spectrum, kind=kind, location=loc, snr_db=snr_db,
+                                  gain_error=sign * gain_error if own is None else float(own))
     samples = round(cycles * sample_rate / frequency)
     return SimulatedBench(specs, sample_rate=sample_rate, frequency=frequency, samples=samples,
                           seed=int(rng.integers(0, 2**31))).capture()
@@ -388,7 +399,9 @@ def analyse_for(capture: Capture) -> WaveformAnalysis:
     from labkit.core.waveform import Pair, analyze
 
     pairs = [Pair(0, 1, capture.locations[1])] if len(capture.channels) >= 2 else []
-    return analyze(capture.data, capture.sample_rate, pairs, names=capture.channels)
+    # a calibrated sensor's skew (through the channel map) corrects the phasor angles
+    delays = np.asarray(capture.delays_s, dtype=float) if any(capture.delays_s) else None
+    return analyze(capture.data, capture.sample_rate, pairs, names=capture.channels, delays_s=delays)
 
 
 def value_from_analysis(analysis: WaveformAnalysis, quantity_name: str, location: str) -> float:

@@ -23,6 +23,12 @@ Steps
     :meth:`forward`, :meth:`back` and :meth:`skip` (with a reason) move through the template;
     a skipped step's changes are not made on the bench (unless ``applied=True``), so later
     steps are predicted for the bench as it really stands. Going forward from a step performs it.
+Calibration steps
+    At a ``calibration`` step, :meth:`calibrate` compares the step's sensor's capture with a
+    reference meter's reading (entered with the meter's id and accuracy), records the corrections
+    as a ``calibration`` event and the reading judged against the reference meter (not the model);
+    later captures of that sensor are corrected through the channel map (also after :meth:`resume`).
+    See :mod:`labkit.session.calibration`.
 As-found source values
     At a ``source_start`` step, :meth:`set_as_found` records the source's voltage and frequency
     as found (typed or from a capture) and later steps are predicted from them, so the bands
@@ -53,11 +59,23 @@ from labkit.core.state import BenchState, SourceSetting, apply_step, initial_sta
 from labkit.core.units import parse_quantity
 from labkit.logbook.schema import ROLES, SESSION_KINDS
 from labkit.logbook.storage import NotRecordedError
+from labkit.session.calibration import (
+    QUANTITY_OF_KIND,
+    CalibrationError,
+    SensorCalibration,
+    compute_corrections,
+    corrected_capture,
+    meter_use,
+    reference_value,
+    seeded_gain_error,
+)
 from labkit.session.readings import (
     ChannelFault,
     ParsedReading,
     ReadingError,
     analyse_for,
+    channels_for,
+    location_spectrum,
     parse_typed,
     sensor_at,
     simulated_capture,
@@ -241,6 +259,7 @@ class SessionRunner:
         self.seed = int(session.get("mc_seed", DEFAULT_SEED))
         self._walk = _Walk()
         self.anchors: dict[str, AsFound] = {}
+        self.calibrations: dict[str, SensorCalibration] = {}  # sensor id -> its latest calibration
         self.entries: list[Entry] = []
         self._views: dict[tuple, StepView] = {}
         self.diagnosis_budget_s = 1.0
@@ -298,6 +317,9 @@ class SessionRunner:
                              float(detail["frequency_hz"]), str(detail["location"]), float(detail["emf_scale"]),
                              float(detail["frequency_offset_hz"]), int(ev["seq"]))
                 self.anchors[af.source] = af
+            elif name == "calibration":
+                cal = SensorCalibration.from_detail(detail, int(ev["seq"]))
+                self.calibrations[cal.sensor] = cal
         self.state_name = state
         self.session["state"] = state
         rows = self.archive.readings(self.session_id, latest_only=True)
@@ -707,7 +729,14 @@ class SessionRunner:
                                 channels=np.array(capture.channels))
             capture_id = self.archive.store_capture(self.session_id, f"step{self.current}-r{spec_index}.npz",
                                                     buf.getvalue())
-        return self.from_analysis(spec_index, analyse_for(capture), capture_id=capture_id, obtained=obtained)
+        # the stored capture is as taken; the stored calibrations of its sensors correct it before the analysis
+        spec = self._spec(self.view(), spec_index)
+        corrected, notes = corrected_capture(capture, channels_for(self.bench, spec), self.calibrations)
+        parsed = self.from_analysis(spec_index, analyse_for(corrected), capture_id=capture_id, obtained=obtained)
+        parsed.notes.extend(notes)
+        if notes:
+            parsed.echo += " (calibrated)"
+        return parsed
 
     def simulate(self, spec_index: int, *, seed: int | None = None, faults: dict[str, ChannelFault] | None = None,
                  snr_db: float = 50.0, gain_error: float = 0.002, store: bool = False) -> ParsedReading:
@@ -722,9 +751,11 @@ class SessionRunner:
             msg = f"step {view.step.id} has no prediction to simulate from: {view.error}"
             raise ReadingError(msg)
         s = self.seed * 1000 + view.index * 37 + spec_index if seed is None else seed
+        if view.step.kind == "calibration":
+            return self._simulate_calibration(view, spec_index, seed=s, snr_db=snr_db, store=store)
         try:
             cap = simulated_capture(view.prediction, self.bench, spec, seed=s, snr_db=snr_db, gain_error=gain_error,
-                                    faults=faults)
+                                    faults=faults, sensor_gain_errors=self.simulated_sensor_errors())
             parsed = self.from_capture(spec_index, cap, store=store, obtained="simulated")
         except ReadingError:
             exp = view.expected[spec_index]
@@ -745,6 +776,195 @@ class SessionRunner:
             raise UnknownNameError(msg)
         return readings[spec_index]
 
+    # -- calibration steps -----------------------------------------------------------------------------
+    def calibrate(self, step_index: int, data: Capture | WaveformAnalysis, reference: str | float, *,
+                  meter_id: str | None = None, accuracy_reading: str | float | None = None,
+                  accuracy_full_scale: str | float | None = None, meter_range: str | float | None = None,
+                  spec_index: int | None = None, channel: str | int | None = None,
+                  skew_channel: str | int | None = None, expected_phase_deg: float = 0.0, store: bool = True,
+                  actor: Actor | None = None, note: str = "") -> Mapping[str, Any]:
+        """Calibrate the sensor of a calibration step against a reference meter and record it.
+
+        Records a ``calibration`` event (sensor, meter id and accuracy, reference and measured values,
+        corrections and their uncertainty; see :mod:`labkit.session.calibration`) and the step's reading
+        row, judged against the reference value (band = reference +- the meter's accuracy, tolerance =
+        the sensor's instrument tolerance), and returns the committed row. Later captures of the sensor
+        through :meth:`from_capture` or :meth:`simulate` are corrected; :meth:`resume` re-applies the
+        corrections from the event.
+
+        Parameters
+        ----------
+        step_index
+            The current step, of kind ``calibration``.
+        data
+            The sensor's capture (physical units; the channel at ``sensor:ID``, the only one of the
+            sensor's kind, or ``channel``), or its analysis (gain and offset only).
+        reference
+            The reference meter's true-RMS reading with its unit (``"120.43 V"``), or a number in V or A.
+        meter_id, accuracy_reading, accuracy_full_scale, meter_range
+            The meter used, if not the template's (accuracies ``"0.1 %"`` or fractions; range ``"200 V"``).
+        spec_index
+            The step's reading to record (default: its ``v_rms`` or ``i_rms`` reading).
+        skew_channel, expected_phase_deg
+            A capture channel of known phase to the sensor's (default: found from a resistive load's
+            current and its bus voltage, 0 deg; else the skew is 0 with a note).
+        store
+            Store the capture in the archive with the reading.
+
+        Raises
+        ------
+        CalibrationError
+            An absurd correction (gain more than 20 % off, ...): nothing is recorded.
+        """
+        who = actor or self.actor
+        self._require_open(who, "calibrate a sensor")
+        parsed = self.prepare_calibration(step_index, data, reference, meter_id=meter_id,
+                                          accuracy_reading=accuracy_reading, accuracy_full_scale=accuracy_full_scale,
+                                          meter_range=meter_range, spec_index=spec_index, channel=channel,
+                                          skew_channel=skew_channel, expected_phase_deg=expected_phase_deg,
+                                          store=store)
+        return self.record(parsed, actor=who, note=note)
+
+    def prepare_calibration(self, step_index: int, data: Capture | WaveformAnalysis, reference: str | float, *,
+                            meter_id: str | None = None, accuracy_reading: str | float | None = None,
+                            accuracy_full_scale: str | float | None = None, meter_range: str | float | None = None,
+                            spec_index: int | None = None, channel: str | int | None = None,
+                            skew_channel: str | int | None = None, expected_phase_deg: float = 0.0,
+                            store: bool = True, obtained: str = "capture") -> ParsedReading:
+        """The calibration reading of :meth:`calibrate`, computed but not recorded (:meth:`record` records it)."""
+        from labkit.captures.capture import Capture as CaptureType
+
+        view = self.view()
+        step = view.step
+        if int(step_index) != view.index:
+            msg = f"a calibration is taken at the current step ({view.index}, {step.id}), not at step {step_index}"
+            raise SessionError(msg)
+        if step.kind != "calibration":
+            msg = f'step "{step.id}" is {step.kind}: sensors are calibrated at a calibration step'
+            raise SessionError(msg)
+        sensor = self.bench.sensor(step.sensor)
+        qname = QUANTITY_OF_KIND[sensor.kind]
+        if spec_index is None:
+            spec_index = next((j for j, r in enumerate(step.readings) if r.quantity == qname), -1)
+            if spec_index < 0:
+                msg = f'calibration step "{step.id}" lists no {qname} reading of sensor {sensor.id} to record'
+                raise CalibrationError(msg)
+        spec = self._spec(view, spec_index)
+        if spec.quantity != qname:
+            msg = (f"reading {spec_index} of step {step.id} is {spec.quantity}; a {sensor.kind} sensor is calibrated "
+                   f"by its {qname}")
+            raise CalibrationError(msg)
+        meter = meter_use(step.reference_meter, qname, meter_id=meter_id, accuracy_reading=accuracy_reading,
+                          accuracy_full_scale=accuracy_full_scale, meter_range=meter_range,
+                          decimal_comma=self.decimal_comma)
+        ref = reference_value(reference, qname, decimal_comma=self.decimal_comma)
+        reading = meter.reading(ref)
+        corr = compute_corrections(data, self.bench, sensor, reading, channel=channel, skew_channel=skew_channel,
+                                   expected_phase_deg=expected_phase_deg)  # refuses an absurd one: nothing stored
+        capture_id = ""
+        if store and isinstance(data, CaptureType):
+            capture_id = self._store_capture(data, spec_index)
+        unit = quantity(qname).unit
+        ref_text = reference if isinstance(reference, str) else f"{ref:.6g} {unit}"
+        cal = SensorCalibration(
+            sensor.id, sensor.kind, qname, unit, view.index, spec_index, corr.channel, corr.location or spec.location,
+            ref, str(ref_text).strip(), corr.measured, meter.meter_id, meter.accuracy_reading,
+            meter.accuracy_full_scale, meter.range, reading.uncertainty, corr.gain, corr.offset, corr.delay_s,
+            reading.uncertainty / ref, obtained, capture_id, corr.notes)
+        echo = (f"{qname} at {spec.location}: sensor {sensor.id} reads {corr.measured:.5g} {unit}, reference "
+                f"{ref:.6g} +- {reading.uncertainty:.3g} {unit} ({meter.meter_id}) -> {cal.summary}")
+        return ParsedReading(view.index, spec_index, qname, spec.location, corr.measured, unit,
+                             f"{corr.channel} against reference {cal.reference_text}", "rms", 1.0, math.nan, echo,
+                             obtained, sensor.id, capture_id, list(corr.notes), calibration=cal)
+
+    def simulated_sensor_errors(self) -> dict[str, float]:
+        """The simulated bench's own gain error of each sensor the template calibrates (seeded; invented demo data)."""
+        return {step.sensor: seeded_gain_error(self.seed, step.sensor)
+                for step in self.template.steps if step.kind == "calibration"}
+
+    def _simulate_calibration(self, view: StepView, spec_index: int, *, seed: int, snr_db: float,
+                              store: bool) -> ParsedReading:
+        """A calibration on the simulated bench: the sensor (with its seeded gain error) and the reference meter."""
+        from labkit.captures.simulate import ChannelSpec, SimulatedBench
+
+        step, pred = view.step, view.prediction
+        if pred is None:
+            msg = f"step {step.id} has no prediction to simulate from: {view.error}"
+            raise ReadingError(msg)
+        sensor = self.bench.sensor(step.sensor)
+        qname = QUANTITY_OF_KIND[sensor.kind]
+        signal = "v" if sensor.kind == "voltage" else "i"
+        for placement in sensor.placements:
+            loc = placement.location
+            if sensor.kind == "current" and "@" not in loc:
+                continue
+            orders, phasors = location_spectrum(pred, loc, signal, sensor.id)
+            true_rms = float(np.sqrt(np.sum(np.abs(phasors) ** 2)))
+            if true_rms > 0:
+                break
+        else:
+            msg = f"sensor {sensor.id} has no energized placement at step {step.id}: nothing to calibrate against"
+            raise ReadingError(msg)
+        sol = pred.solution
+        node = sol.network.bus_node.get(loc.partition("@")[2] if "@" in loc else loc)
+        frequency = float(sol.island_frequency_hz[0, node]) if node is not None else float(sol.network.frequency_hz)
+        rng = np.random.default_rng(seed)
+        sample_rate = 10_000.0
+        meter = meter_use(step.reference_meter, qname)
+        # the reference meter reads the true value within half its accuracy, shown to 5 digits
+        shown = true_rms + 0.5 * meter.uncertainty(true_rms) * rng.uniform(-1.0, 1.0)
+        spectrum = tuple((int(h), complex(x)) for h, x in zip(orders, phasors, strict=True)
+                         if h * frequency < 0.45 * sample_rate)
+        spec = ChannelSpec(spectrum, kind=sensor.kind, location=loc, snr_db=snr_db,
+                           gain_error=seeded_gain_error(self.seed, sensor.id))
+        cap = SimulatedBench({f"{signal}@{loc}": spec}, sample_rate=sample_rate, frequency=frequency,
+                             samples=round(12 * sample_rate / frequency), seed=int(rng.integers(0, 2**31))).capture()
+        return self.prepare_calibration(view.index, cap, f"{shown:.5g} {quantity(qname).unit}",
+                                        spec_index=spec_index, store=store, obtained="simulated")
+
+    def _commit_calibration(self, parsed: ParsedReading, who: Actor) -> None:
+        """The ``calibration`` event of a calibration reading; its corrections apply from now on."""
+        cal = parsed.calibration
+        if cal is None:
+            return
+        if cal.step_index != self.current:
+            msg = f"a calibration of step {cal.step_index} is recorded at that step; the session is at {self.current}"
+            raise SessionError(msg)
+        ev = self._event("calibration", who, step_id=self.template.steps[cal.step_index].id, detail=cal.detail())
+        cal = replace(cal, seq=int(ev.get("seq", -1)))
+        self.calibrations[cal.sensor] = cal
+        parsed.calibration = cal
+
+    def _calibration_of(self, parsed: ParsedReading) -> SensorCalibration | None:
+        """The calibration a reading row of a calibration step is judged by (its own, or the step's last)."""
+        if parsed.calibration is not None:
+            return parsed.calibration
+        step = self.template.steps[parsed.step_index]
+        if step.kind != "calibration":
+            return None
+        cal = self.calibrations.get(step.sensor)
+        return cal if cal is not None and (cal.step_index, cal.spec_index) == (parsed.step_index,
+                                                                                parsed.spec_index) else None
+
+    def _calibration_tolerance(self, spec: ReadingSpec, parsed: ParsedReading,
+                               cal: SensorCalibration) -> tuple[float, str]:
+        """The tolerance of a calibration reading: the template's, or the calibrated sensor's instrument accuracy."""
+        given = template_tolerance(spec.tolerance, spec.quantity, cal.reference_value)
+        if given is not None:
+            return given, "template tolerance"
+        sensor = self.bench.sensor(cal.sensor)
+        return (instrument_tolerance(sensor.accuracy, parsed.value, float(sensor.range)),
+                f"instrument: sensor {sensor.id}")
+
+    def _store_capture(self, capture: Capture, spec_index: int) -> str:
+        """Store a capture's samples with the session (npz); its id."""
+        import io
+
+        buf = io.BytesIO()
+        np.savez_compressed(buf, data=capture.data, sample_rate=capture.sample_rate,
+                            channels=np.array(capture.channels))
+        return self.archive.store_capture(self.session_id, f"step{self.current}-r{spec_index}.npz", buf.getvalue())
+
     # -- recording -------------------------------------------------------------------------------------
     def record(self, parsed: ParsedReading, *, meter: Meter | None = None, actor: Actor | None = None,
                note: str = "") -> Mapping[str, Any]:
@@ -755,6 +975,8 @@ class SessionRunner:
         """
         who = actor or self.actor
         self._require_open(who, "record a reading")
+        if parsed.calibration is not None and parsed.calibration.seq < 0:
+            self._commit_calibration(parsed, who)
         entry = Entry(parsed, "not recorded", who, meter, note, uuid.uuid4().hex, 0)
         return self._commit(entry)
 
@@ -817,6 +1039,15 @@ class SessionRunner:
         spec = exp.spec if exp else None
         predicted, low, high = (exp.predicted, exp.band_low, exp.band_high) if exp else (math.nan,) * 3
         tol, tol_note = self.tolerance(spec, p, predicted, entry.meter) if spec else (math.nan, "")
+        anchor = view.anchor
+        cal = self._calibration_of(p)
+        if cal is not None and spec is not None:
+            # a calibration reading is judged against the reference meter, never against the model
+            predicted, low, high = cal.reference_value, cal.reference_value - cal.uncertainty, \
+                cal.reference_value + cal.uncertainty
+            tol, tol_note = self._calibration_tolerance(spec, p, cal)
+            tol_note = f"{tol_note}; judged against the {cal.label}; corrections {cal.summary}"
+            anchor = cal.label
         result = verdict(p.value, low, high, tol, predicted=predicted, angle=p.quantity in ANGLE_QUANTITIES)
         row: dict[str, Any] = {
             "reading_id": entry.reading_id, "revision": entry.revision,
@@ -827,10 +1058,11 @@ class SessionRunner:
             "band_low": low, "band_high": high, "tolerance": tol, "measured": p.value, "entered": p.entered,
             "form": p.form, "meter_range": p.meter_range, "obtained": p.obtained, "sensor": p.sensor,
             "verdict": result, "diagnosis": "", "diagnosis_code": "",
-            "anchor": view.anchor, "capture_id": p.capture_id, "recorded_by": entry.actor.id,
+            "anchor": anchor, "capture_id": p.capture_id, "recorded_by": entry.actor.id,
             "reason": entry.reason, "note": "; ".join(x for x in (entry.note, tol_note, *p.notes) if x),
         }
-        row["diagnosis"], row["diagnosis_code"] = self._diagnose(row, view)
+        if cal is None:  # the model-based diagnosis does not apply to a reading judged against a reference meter
+            row["diagnosis"], row["diagnosis_code"] = self._diagnose(row, view)
         return row
 
     def tolerance(self, spec: ReadingSpec, parsed: ParsedReading, predicted: float,
