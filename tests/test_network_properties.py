@@ -295,3 +295,22 @@ def test_sweep_of_a_load_bank_equals_solving_each_step(demo: Bench) -> None:
     for value, sol in results:
         exact = solve_network(compile_network(demo, state.with_changes(loads={"RB": value})), harmonics=False)
         np.testing.assert_allclose(sol.v[0, 0], exact.v[0, 0], rtol=1e-12)
+
+
+def test_padded_batch_equals_each_configuration_solved_alone() -> None:
+    # the whole 2-change switch space of the benchmark network, including states where a closed tie joins both
+    # ends of a line (its series element then stamps nothing); reference: each network's own LinearSystem
+    from labkit.core.solve import LinearSystem
+    from labkit.core.switchspace import make_batch, neighbours, solve_batch
+    from tests.benchmarks.test_bench_network import benchmark_bench
+
+    bench, state = benchmark_bench()
+    nets = [compile_network(bench, s) for _, s in neighbours(bench, state, 2)]
+    batch = make_batch(nets)
+    emf = np.zeros((len(nets), batch.src_node.shape[1]), dtype=complex)
+    emf[:, 0] = 120.0
+    v, _, failed = solve_batch(batch, emf, 60.0)
+    assert not failed.any()
+    for k, net in enumerate(nets):
+        alone = LinearSystem.from_network(net).solve(2 * np.pi * 60.0, emf[k, : len(net.sources)])
+        np.testing.assert_allclose(v[k, : net.n_nodes], alone, rtol=1e-9, atol=1e-9)

@@ -23,7 +23,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from labkit.core.bench import Bench, LinearLoad
-from labkit.core.network import Network, NetworkError, compile_network, element_admittances
+from labkit.core.network import Network, NetworkError, compile_network
 from labkit.core.results import quantity_arrays
 from labkit.core.solve import Solution, element_arrays, solve_network, stacked_solve
 from labkit.core.state import BenchState
@@ -85,7 +85,9 @@ class Batch:
         n = self.n_nodes
         off_m = (np.arange(c) * n * n)[:, None]
         off_e = (np.arange(c) * e)[:, None] + np.arange(e)[None, :]
-        ga, gb = self.a >= 0, self.b >= 0
+        # an element with both ends on one node (a line whose ends a closed switch joins) stamps nothing
+        loop = (self.a == self.b) & (self.a >= 0)
+        ga, gb = (self.a >= 0) & ~loop, (self.b >= 0) & ~loop
         both = ga & gb
         index = np.concatenate([(self.a * (n + 1) + off_m)[ga], (self.b * (n + 1) + off_m)[gb],
                                 (self.a * n + self.b + off_m)[both], (self.b * n + self.a + off_m)[both]])
@@ -96,6 +98,30 @@ class Batch:
         index, self.stamp_source, self.stamp_sign = index[order], source[order], sign[order]
         self.stamp_index, starts = np.unique(index, return_index=True)
         self.stamp_starts = starts
+        # a matrix position is either diagonal (all terms +) or off-diagonal (all terms -): one sign each
+        self.stamp_sign = self.stamp_sign[starts]
+        valid = self.src_node >= 0
+        self._inj_flat = (np.arange(c)[:, None] * n + self.src_node)[valid]
+        self._inj_elem = (np.arange(c)[:, None] * e + self.src_elem)[valid]
+        self._inj_valid = valid
+        # the element values do not change between solves of a batch: keep each kind's terms ready
+        kind = self.kind.ravel()
+        self._series, self._parallel, self._fixed = (np.flatnonzero(kind == k) for k in (0, 1, 2))
+        r, l_, c_ = self.r.ravel(), self.l.ravel(), self.c.ravel()
+        s_, p_ = self._series, self._parallel
+        with np.errstate(divide="ignore"):
+            self._terms = (r[s_], l_[s_], np.where(np.isfinite(c_[s_]), 1.0 / c_[s_], 0.0),
+                           np.where(np.isfinite(r[p_]), 1.0 / r[p_], 0.0), c_[p_],
+                           np.where(np.isfinite(l_[p_]), 1.0 / l_[p_], 0.0), self.y_fixed.ravel()[self._fixed])
+
+    def admittances(self, omega: float) -> NDArray[np.complex128]:
+        """Element admittances (C, E) at ``omega`` (rad/s)."""
+        r_s, l_s, cinv_s, g_p, c_p, linv_p, y_f = self._terms
+        out = np.empty(self.kind.size, dtype=complex)
+        out[self._series] = 1.0 / (r_s + 1j * (omega * l_s - cinv_s / omega))
+        out[self._parallel] = g_p + 1j * (omega * c_p - linv_p / omega)
+        out[self._fixed] = y_f
+        return out.reshape(self.kind.shape)
 
 
 def make_batch(networks: Sequence[Network]) -> Batch:
@@ -131,20 +157,16 @@ def solve_batch(batch: Batch, emf: NDArray[np.complex128], frequency_hz: float) 
 
     Returns node voltages (C, N), element admittances (C, E) and the failed flags (C,).
     """
-    omega = 2 * np.pi * frequency_hz
-    y_el = element_admittances(batch.kind, batch.r, batch.l, batch.c, batch.y_fixed, omega)
+    y_el = batch.admittances(2 * np.pi * frequency_hz)
     c, n = y_el.shape[0], batch.n_nodes
     # the stamp positions are fixed per batch: one gather and one segmented sum build every matrix
-    w = y_el.ravel()[batch.stamp_source] * batch.stamp_sign
+    flat_y = y_el.ravel()
     flat = np.zeros(c * n * n, dtype=complex)
-    flat[batch.stamp_index] = np.add.reduceat(w, batch.stamp_starts)
+    flat[batch.stamp_index] = np.add.reduceat(flat_y[batch.stamp_source], batch.stamp_starts) * batch.stamp_sign
     ymat = flat.reshape(c, n, n)
-    inj = np.zeros((c, n), dtype=complex)
-    valid = batch.src_node >= 0
-    rows = np.broadcast_to(np.arange(c)[:, None], batch.src_node.shape)
-    y_src = np.take_along_axis(y_el, batch.src_elem, axis=1)
-    np.add.at(inj, (rows[valid], batch.src_node[valid]), (emf * y_src)[valid])
-    v, failed = stacked_solve(ymat, inj)
+    inj = np.zeros(c * n, dtype=complex)
+    np.add.at(inj, batch._inj_flat, emf[batch._inj_valid] * flat_y[batch._inj_elem])
+    v, failed = stacked_solve(ymat, inj.reshape(c, n))
     return v, y_el, failed
 
 
