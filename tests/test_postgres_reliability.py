@@ -18,10 +18,8 @@ Every check reads the server over a raw psycopg connection, not through labkit, 
 from __future__ import annotations
 
 import hashlib
-import os
 import random
 import shutil
-import signal
 import sqlite3
 import subprocess
 import sys
@@ -36,7 +34,7 @@ import pytest
 from labkit.logbook.sqlite import SQLiteArchive
 from tests.pg_support import pg_server  # noqa: F401  (the session fixture)
 from tests.reliability.factory import correction_of, reading_row, session_row
-from tests.reliability.test_kill import WRITER, _acks
+from tests.reliability.test_kill import WRITER, _acks, kill_writer_at_random
 
 psycopg = pytest.importorskip("psycopg")
 from labkit.logbook.postgres import PostgresArchive, add_member  # noqa: E402
@@ -84,19 +82,7 @@ def test_sigkill_never_loses_an_acknowledged_reading_on_the_server(db, pg_server
     killed_with_acks = 0
     started = time.monotonic()
     for _ in range(KILLS):
-        proc = subprocess.Popen([sys.executable, str(WRITER), db["rk"], sid, "100000", "9", "rk"],
-                                stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-        first = ""
-        if rng.random() < 0.2:  # while starting, connecting or writing the first reading
-            time.sleep(rng.uniform(0.0, 0.3))
-        else:  # mid-stream: after the first acknowledgement, at a random moment
-            first = proc.stdout.readline()
-            time.sleep(rng.uniform(0.0, 0.12))
-        os.kill(proc.pid, signal.SIGKILL)
-        out, err = proc.communicate(timeout=30)
-        out = first + out
-        assert proc.returncode == -signal.SIGKILL, err
-        new = _acks(out)
+        new = kill_writer_at_random([db["rk"], sid, "100000", "9", "rk"], rng, 0.3)
         killed_with_acks += bool(new)
         acknowledged |= new
         with _raw(db) as conn:

@@ -200,8 +200,11 @@ def assemble(n_nodes: int, a: NDArray, b: NDArray, y: NDArray) -> NDArray[np.com
     return (re + 1j * im).reshape(*lead, n_nodes, n_nodes)
 
 
-def _assemble_shared(n_nodes: int, a: NDArray, b: NDArray, y: NDArray) -> NDArray[np.complex128]:
-    """Many samples of one pattern: a small real stamp matrix turns the scatter into one matmul."""
+def stamp_pattern(n_nodes: int, a: NDArray, b: NDArray) -> tuple[NDArray[np.float64], NDArray[np.intp]]:
+    """The stamp of a fixed element pattern: ``Y.flat[positions] = y @ stamp`` for element admittances ``y``.
+
+    ``stamp`` is (E, U) with +1/-1 entries, ``positions`` the U flat matrix positions it fills.
+    """
     ga, gb = a >= 0, b >= 0
     both = ga & gb
     el = np.arange(a.size)
@@ -212,6 +215,12 @@ def _assemble_shared(n_nodes: int, a: NDArray, b: NDArray, y: NDArray) -> NDArra
     unique, inverse = np.unique(pos, return_inverse=True)
     stamp = np.zeros((a.size, unique.size))
     np.add.at(stamp, (src, inverse), sign)
+    return stamp, unique
+
+
+def _assemble_shared(n_nodes: int, a: NDArray, b: NDArray, y: NDArray) -> NDArray[np.complex128]:
+    """Many samples of one pattern: a small real stamp matrix turns the scatter into one matmul."""
+    stamp, unique = stamp_pattern(n_nodes, a, b)
     # one real matmul on the interleaved (re, im) pairs: (S, 2, E) @ (E, U)
     pairs = np.ascontiguousarray(y.view(np.float64).reshape(y.shape[0], a.size, 2).transpose(0, 2, 1))
     stamped = pairs @ stamp

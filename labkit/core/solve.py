@@ -26,7 +26,15 @@ import numpy as np
 from numpy.typing import NDArray
 
 from labkit.core.bench import AlternatorSet, NonlinearLoad
-from labkit.core.network import NEUTRAL, Network, NetworkError, assemble, compile_network, element_admittances
+from labkit.core.network import (
+    NEUTRAL,
+    Network,
+    NetworkError,
+    assemble,
+    compile_network,
+    element_admittances,
+    stamp_pattern,
+)
 
 MAX_NEWTON = 30
 NEWTON_TOL_W = 1e-9  # relative to the set's rating
@@ -436,17 +444,9 @@ class LinearSystem:
     def from_network(cls, net: Network) -> LinearSystem:
         """Prepare a compiled network."""
         ea = net.element_arrays()
-        kind, a, b = ea["kind"], ea["a"], ea["b"]
+        kind = ea["kind"]
         n = net.n_nodes
-        ga, gb = a >= 0, b >= 0
-        both = ga & gb
-        el = np.arange(a.size)
-        pos = np.concatenate([a[ga] * (n + 1), b[gb] * (n + 1), a[both] * n + b[both], b[both] * n + a[both]])
-        src = np.concatenate([el[ga], el[gb], el[both], el[both]])
-        sign = np.concatenate([np.ones(ga.sum() + gb.sum()), -np.ones(2 * both.sum())])
-        unique, inverse = np.unique(pos, return_inverse=True)
-        stamp = np.zeros((a.size, unique.size))
-        np.add.at(stamp, (src, inverse), sign)
+        stamp, unique = stamp_pattern(n, ea["a"], ea["b"])
         with np.errstate(divide="ignore"):
             c_inv = np.where(kind == 0, np.where(np.isfinite(ea["c"]), 1.0 / ea["c"], 0.0), ea["c"])
             g = np.where(np.isfinite(ea["r"]) & (kind == 1), 1.0 / ea["r"], 0.0)
@@ -466,14 +466,18 @@ class LinearSystem:
         y[self.fixed] = self.y_fixed[self.fixed]
         return y
 
+    def matrix(self, y: NDArray[np.complex128]) -> NDArray[np.complex128]:
+        """The nodal admittance matrix (N, N) of element admittances ``y``."""
+        flat = np.zeros(self.n_nodes * self.n_nodes, dtype=complex)
+        flat[self.positions] = y @ self.stamp
+        return flat.reshape(self.n_nodes, self.n_nodes)
+
     def solve(self, omega: float, emf: NDArray[np.complex128] | None = None) -> NDArray[np.complex128]:
         """Node voltage phasors (N,) at ``omega`` with the sources' EMFs (compiled ones by default)."""
         y = self.admittances(omega)
-        flat = np.zeros(self.n_nodes * self.n_nodes, dtype=complex)
-        flat[self.positions] = y @ self.stamp
         inj = np.zeros(self.n_nodes, dtype=complex)
         np.add.at(inj, self.src_node, (self.emf if emf is None else emf) * y[self.src_elem])
-        return np.linalg.solve(flat.reshape(self.n_nodes, self.n_nodes), inj)
+        return np.linalg.solve(self.matrix(y), inj)
 
 
 def thevenin_impedance(net: Network, node: int, frequency_hz: float | None = None) -> complex:
@@ -483,9 +487,6 @@ def thevenin_impedance(net: Network, node: int, frequency_hz: float | None = Non
     """
     system = LinearSystem.from_network(net)
     f = net.frequency_hz if frequency_hz is None else frequency_hz
-    y = system.admittances(2 * np.pi * f)
-    flat = np.zeros(system.n_nodes * system.n_nodes, dtype=complex)
-    flat[system.positions] = y @ system.stamp
     unit = np.zeros(system.n_nodes, dtype=complex)
     unit[node] = 1.0
-    return complex(np.linalg.solve(flat.reshape(system.n_nodes, system.n_nodes), unit)[node])
+    return complex(np.linalg.solve(system.matrix(system.admittances(2 * np.pi * f)), unit)[node])

@@ -25,6 +25,26 @@ WRITER = Path(__file__).with_name("writer.py")
 KILLS = 60
 
 
+def kill_writer_at_random(argv: list[str], rng: random.Random, start_window_s: float) -> set[tuple[str, int]]:
+    """Start a recording writer, SIGKILL it at a random moment, return the readings it acknowledged.
+
+    One time in five the kill lands while the writer starts, opens the archive or writes its first reading
+    (within ``start_window_s``); otherwise after its first acknowledgement, at a random moment mid-stream.
+    """
+    proc = subprocess.Popen([sys.executable, str(WRITER), *argv], stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            text=True)
+    first = ""
+    if rng.random() < 0.2:
+        time.sleep(rng.uniform(0.0, start_window_s))
+    else:
+        first = proc.stdout.readline()
+        time.sleep(rng.uniform(0.0, 0.12))
+    os.kill(proc.pid, signal.SIGKILL)
+    out, err = proc.communicate(timeout=30)
+    assert proc.returncode == -signal.SIGKILL, err
+    return _acks(first + out)
+
+
 def _acks(text: str) -> set[tuple[str, int]]:
     acked = set()
     for line in text.splitlines(keepends=True):
@@ -45,19 +65,7 @@ def test_sigkill_never_loses_an_acknowledged_reading(tmp_path: Path) -> None:
     acknowledged: set[tuple[str, int]] = set()
     killed_with_acks = 0
     for _ in range(KILLS):
-        proc = subprocess.Popen([sys.executable, str(WRITER), str(path), row["session_id"], "100000", "9"],
-                                stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-        first = ""
-        if rng.random() < 0.2:  # while starting, opening or writing the first reading
-            time.sleep(rng.uniform(0.0, 0.2))
-        else:  # mid-stream: after the first acknowledgement, at a random moment
-            first = proc.stdout.readline()
-            time.sleep(rng.uniform(0.0, 0.12))
-        os.kill(proc.pid, signal.SIGKILL)
-        out, err = proc.communicate(timeout=30)
-        out = first + out
-        assert proc.returncode == -signal.SIGKILL, err
-        new = _acks(out)
+        new = kill_writer_at_random([str(path), row["session_id"], "100000", "9"], rng, 0.2)
         killed_with_acks += bool(new)
         acknowledged |= new
         conn = sqlite3.connect(f"file:{path}?mode=ro", uri=True)
