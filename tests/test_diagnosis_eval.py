@@ -10,7 +10,9 @@ the verdict rule (labkit.session.verdict), since an invisible mistake is not one
 
 Targets (from the task): top-1 correct >= 90 % and false diagnoses on correct readings <= 2 %.
 A tie that contains the true class counts as correct (the readings cannot tell the tied classes
-apart); the strict rate (the true class alone on top) is printed as well.
+apart; e.g. 0 V at a live bus fits a DC-mode meter, an open switch upstream and a sensor at a dead
+bus alike); printed as well are the strict rate (the true class alone on top) and the shared rate
+(a tie of k classes credited 1/k, as if the teaching assistant checked one of them at random).
 """
 
 from __future__ import annotations
@@ -234,6 +236,7 @@ def test_diagnosis_evaluation(demo_bench: Bench) -> None:
     pool = {code: [(site, m) for site in sites for m in _mistakes(demo_bench, site, code, rng)] for code in CODES}
     confusion: dict[str, Counter] = defaultdict(Counter)
     strict = Counter()
+    shared: Counter = Counter()
     total = Counter()
     invisible = Counter()
     for code in CODES:
@@ -258,6 +261,7 @@ def test_diagnosis_evaluation(demo_bench: Bench) -> None:
                 label = code if code in top else diag.code.split(",")[0]
                 confusion[code][label] += 1
                 strict[code] += top == (code,)
+                shared[code] += (code in top) / len(top)
                 total[code] += 1
                 done += 1
     mistakes_s = time.perf_counter() - started
@@ -275,16 +279,20 @@ def test_diagnosis_evaluation(demo_bench: Bench) -> None:
                         unexplained[d.code] += 1
 
     print("\nDiagnosis evaluation (seed", SEED, "; noise", NOISE_LEVELS, "of reading + resolution)")
-    print(f"{'true class':26s} {'cases':>5s} {'top-1':>6s} {'strict':>6s} {'invisible':>9s}  diagnosed as")
+    print(f"{'true class':26s} {'cases':>5s} {'top-1':>6s} {'strict':>6s} {'shared':>6s} {'invisible':>9s}"
+          "  diagnosed as")
     correct_all = strict_all = n_all = 0
+    shared_all = 0.0
     for code in CODES:
         n = total[code]
         ok = confusion[code][code]
         correct_all, strict_all, n_all = correct_all + ok, strict_all + strict[code], n_all + n
+        shared_all += shared[code]
         others = ", ".join(f"{c}: {v}" for c, v in confusion[code].most_common() if c != code)
         print(f"{code:26s} {n:5d} {100 * ok / max(n, 1):5.0f}% {100 * strict[code] / max(n, 1):5.0f}% "
-              f"{invisible[code]:9d}  {others}")
-    print(f"{'all mistakes':26s} {n_all:5d} {100 * correct_all / n_all:5.1f}% {100 * strict_all / n_all:5.1f}%")
+              f"{100 * shared[code] / max(n, 1):5.0f}% {invisible[code]:9d}  {others}")
+    print(f"{'all mistakes':26s} {n_all:5d} {100 * correct_all / n_all:5.1f}% {100 * strict_all / n_all:5.1f}% "
+          f"{100 * shared_all / n_all:5.1f}%")
     rate = sum(false.values()) / n_correct
     print(f"time: {mistakes_s:.1f} s for the mistake cases (with set-up), "
           f"{time.perf_counter() - started - mistakes_s:.1f} s for the correct readings")

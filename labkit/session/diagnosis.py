@@ -41,8 +41,10 @@ Scoring
     another placement or in another switch configuration, ...). A reading's misfit is its
     distance outside that interval over ``sigma = sqrt((g tol / 2)^2 + floor^2)`` (``g`` the
     mistake's gain, ``floor`` the instrument's offset and last digits), capped so that one
-    unrelated wrong reading cannot dominate. Likelihood = prior x exp(-sum misfit^2 / 2),
-    normalized over the hypotheses of the reading. Hypotheses whose predicted readings lie within
+    unrelated wrong reading cannot dominate. Likelihood = prior x exp(-sum misfit^2 / 2) / spread,
+    the spread (interval width + sqrt(2 pi) sigma, relative to the prediction's own, its log
+    capped at +-3) favouring the hypothesis that foretold the reading more sharply; normalized
+    over the hypotheses of the reading. Hypotheses whose predicted readings lie within
     one sigma of the best one's (over all readings of the step) are reported as a tie.
     Priors are common practice (a correct reading is the likeliest; every mistake class is
     equally likely, its prior split over its variants, e.g. the placements of a sensor or the
@@ -90,6 +92,8 @@ TIE_COST = 1.0  # ... and fitting them about as well
 PRIOR = {NONE: 5.0, UNEXPLAINED: 0.5}  # common practice; every mistake class has prior 1
 SWITCH_SHARE = {1: 0.7, 2: 0.3}  # the switch class's prior, split over one- and two-item changes
 MAX_SWITCH_CANDIDATES = 5  # best search candidates re-predicted with harmonics and scored
+MAX_SHARPNESS = math.log(20.0)  # a hypothesis 20 x sharper than the prediction gains at most e^3
+SQRT_2PI = math.sqrt(2 * math.pi)
 MAX_RELATIVE_TOLERANCE = 0.3  # of the prediction: a wider tolerance says nothing about which mistake it was
 
 
@@ -552,12 +556,31 @@ def _switch_hypotheses(bench: Bench, state: BenchState, prediction: Prediction, 
 
 
 # -- scoring ------------------------------------------------------------------------------------------
-def _costs(rows: list[_Row], expl: _Expl | None) -> np.ndarray:
-    """Misfit^2 / 2 of every reading under a hypothesis (None: every reading as predicted)."""
+def _spread(row: _Row, interval: tuple[float, ...]) -> float:
+    """Width of the reading's likelihood under an interval: band width + sqrt(2 pi) sigma."""
+    lo, hi = interval[1], interval[2]
+    if not (math.isfinite(lo) and math.isfinite(hi)):
+        return math.nan
+    return (hi - lo) + SQRT_2PI * _sigma(row, interval)
+
+
+def _costs(rows: list[_Row], expl: _Expl | None, *, sharpness: bool = True) -> np.ndarray:
+    """-log likelihood of every reading under a hypothesis, relative to "as predicted" (None).
+
+    Misfit^2 / 2, plus (``sharpness``) the log of how much narrower or wider the hypothesis
+    spreads the reading than the prediction does (a likelihood density is 1 / spread at its
+    peak), capped at ``MAX_SHARPNESS``: a reading of 0.1203 V where 120.3 V is predicted fits
+    both a unit-prefix slip (0.1203 +- 0.0002) and a DC-mode meter (0 +- the meter's offset),
+    but only the slip foretold those digits.
+    """
     out = np.empty(len(rows))
     for k, row in enumerate(rows):
         interval = expl.expect.get(k) if expl is not None else None
         out[k] = 0.5 * _z(row, row.reading.measured, interval or _none_interval(row)) ** 2
+        if sharpness and interval is not None:
+            ratio = _spread(row, interval) / _spread(row, _none_interval(row))
+            if math.isfinite(ratio) and ratio > 0:
+                out[k] += float(np.clip(math.log(ratio), -MAX_SHARPNESS, MAX_SHARPNESS))
     return out
 
 
@@ -725,7 +748,7 @@ def diagnose(bench: Bench, state: BenchState, prediction: Prediction, readings: 
     remaining = budget_s - (time.perf_counter() - start)
     switch = _switch_hypotheses(bench, state, prediction, rows, 1, remaining)
     # widen to two-item changes only when nothing found so far explains every outside reading
-    explained = any(all(_costs(rows, e)[k] < 4.5 for k in outside) for e in expls + switch)
+    explained = any(all(_costs(rows, e, sharpness=False)[k] < 4.5 for k in outside) for e in expls + switch)
     remaining = budget_s - (time.perf_counter() - start)
     if not explained and remaining > 0:
         seen = {e.key for e in switch}
