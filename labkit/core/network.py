@@ -105,7 +105,23 @@ class Network:
 
     # arrays -----------------------------------------------------------------------------
     def element_arrays(self) -> dict[str, NDArray]:
-        """The element table as arrays (one entry per element)."""
+        """The element table as arrays (one entry per element; built once, read-only)."""
+        cached = self.__dict__.get("_element_arrays")
+        if cached is None or cached[0] != len(self.elements):
+            arrays = self._build_element_arrays()
+            for value in arrays.values():
+                value.setflags(write=False)
+            cached = self.__dict__["_element_arrays"] = (len(self.elements), arrays)
+        return cached[1]
+
+    def element_model(self) -> ElementModel:
+        """The elements' admittances as a function of tolerance factors (built once)."""
+        cached = self.__dict__.get("_element_model")
+        if cached is None or cached[0] != len(self.elements):
+            cached = self.__dict__["_element_model"] = (len(self.elements), ElementModel.from_network(self))
+        return cached[1]
+
+    def _build_element_arrays(self) -> dict[str, NDArray]:
         e = self.elements
         return {
             "kind": np.array([_KIND_CODE[x.kind] for x in e], dtype=np.int8),
@@ -169,6 +185,102 @@ def element_admittances(kind: NDArray, r: NDArray, l: NDArray, c: NDArray, y_fix
     if fix.size:
         out[..., fix] = cols(y_fixed, fix)
     return out
+
+
+@dataclass(frozen=True)
+class ElementModel:
+    """A network's element admittances as a function of tolerance factors, prepared once.
+
+    The stacked path of :func:`element_admittances` builds R, L and C arrays for every sample and
+    evaluates every term of every kind; here each kind keeps only the terms its elements have
+    (a pi section's shunt is ``jwC`` alone, a resistive load ``1/R`` alone) and samples only the
+    factors of those terms, which is what a 10,000-sample tolerance band spends its time on.
+    ``factors`` are (S, n_params) multipliers of ``net.parameters``; a parameter index of -1
+    means "not varied".
+    """
+
+    n_elements: int
+    n_params: int
+    series: NDArray[np.intp]
+    ser_r: NDArray[np.float64]
+    ser_r_param: NDArray[np.intp]
+    ser_l: NDArray[np.float64]
+    ser_l_param: NDArray[np.intp]
+    ser_c_at: NDArray[np.intp]  # positions within ``series`` that have a capacitor
+    ser_c: NDArray[np.float64]
+    ser_c_param: NDArray[np.intp]
+    parallel: NDArray[np.intp]
+    par_g_at: NDArray[np.intp]  # positions within ``parallel`` with a conductance, an inductor, a capacitor
+    par_r: NDArray[np.float64]
+    par_r_param: NDArray[np.intp]
+    par_l_at: NDArray[np.intp]
+    par_l: NDArray[np.float64]
+    par_l_param: NDArray[np.intp]
+    par_c_at: NDArray[np.intp]
+    par_c: NDArray[np.float64]
+    par_c_param: NDArray[np.intp]
+    fixed: NDArray[np.intp]
+    fix_y: NDArray[np.complex128]
+    fix_param: NDArray[np.intp]
+
+    @classmethod
+    def from_network(cls, net: Network) -> ElementModel:
+        """Prepare a compiled network's elements."""
+        ea = net.element_arrays()
+        kind = ea["kind"]
+        ser, par, fix = (np.flatnonzero(kind == k) for k in (0, 1, 2))
+        ser_c_at = np.flatnonzero(np.isfinite(ea["c"][ser]))
+        r_par, l_par, c_par = ea["r"][par], ea["l"][par], ea["c"][par]
+        g_at, l_at, c_at = np.flatnonzero(np.isfinite(r_par)), np.flatnonzero(np.isfinite(l_par)), np.flatnonzero(c_par)
+        return cls(kind.size, len(net.parameters),
+                   ser, ea["r"][ser], ea["r_param"][ser], ea["l"][ser], ea["l_param"][ser],
+                   ser_c_at, ea["c"][ser][ser_c_at], ea["c_param"][ser][ser_c_at],
+                   par, g_at, r_par[g_at], ea["r_param"][par][g_at], l_at, l_par[l_at], ea["l_param"][par][l_at],
+                   c_at, c_par[c_at], ea["c_param"][par][c_at], fix, ea["y_fixed"][fix], ea["fixed_param"][fix])
+
+    def admittances(self, factors: NDArray[np.float64] | None, omega: float | NDArray) -> NDArray[np.complex128]:
+        """Element admittances (S, E) for factors (S, n_params) (None: nominal, S = 1).
+
+        ``omega`` (rad/s) is a scalar, (S, 1) per member, or (S, E) per element.
+        """
+        if factors is None:
+            factors = np.ones((1, self.n_params))
+        pad = np.concatenate([factors, np.ones((factors.shape[0], 1))], axis=1)  # index -1 -> factor 1
+        w = np.asarray(omega, dtype=float)
+        s = max(factors.shape[0], w.shape[0] if w.ndim == 2 else 1)  # nominal factors may meet stacked omegas
+        per_element = w.ndim == 2 and w.shape[1] == self.n_elements and self.n_elements > 1
+
+        def at(cols: NDArray[np.intp]) -> NDArray[np.float64]:
+            return w[:, cols] if per_element else w
+
+        out = np.empty((s, self.n_elements), dtype=complex)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            if self.series.size:
+                w_ser = at(self.series)
+                r = self.ser_r * pad[:, self.ser_r_param]
+                x = (w_ser * self.ser_l) * pad[:, self.ser_l_param]
+                if self.ser_c_at.size:
+                    w_c = w_ser[:, self.ser_c_at] if per_element else w_ser
+                    x[:, self.ser_c_at] -= 1.0 / ((w_c * self.ser_c) * pad[:, self.ser_c_param])
+                den = r * r + x * x
+                part = np.empty((s, self.series.size), dtype=complex)
+                part.real = r / den
+                part.imag = -x / den
+                out[:, self.series] = part
+            if self.parallel.size:
+                part = np.zeros((s, self.parallel.size), dtype=complex)
+                if self.par_g_at.size:
+                    part.real[:, self.par_g_at] = 1.0 / (self.par_r * pad[:, self.par_r_param])
+                if self.par_c_at.size:
+                    w_c = at(self.parallel[self.par_c_at])
+                    part.imag[:, self.par_c_at] = (w_c * self.par_c) * pad[:, self.par_c_param]
+                if self.par_l_at.size:
+                    part.imag[:, self.par_l_at] -= 1.0 / ((at(self.parallel[self.par_l_at]) * self.par_l)
+                                                          * pad[:, self.par_l_param])
+                out[:, self.parallel] = part
+        if self.fixed.size:
+            out[:, self.fixed] = self.fix_y * pad[:, self.fix_param]
+        return out
 
 
 def assemble(n_nodes: int, a: NDArray, b: NDArray, y: NDArray) -> NDArray[np.complex128]:

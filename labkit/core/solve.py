@@ -32,11 +32,12 @@ from labkit.core.network import (
     NetworkError,
     assemble,
     compile_network,
-    element_admittances,
     stamp_pattern,
 )
+from labkit.core.reduction import plan_elimination, reduced_solve
 
 MAX_NEWTON = 30
+REDUCE_MIN_STACK = 16  # stacks at least this tall eliminate chain nodes first (labkit.core.reduction)
 NEWTON_TOL_W = 1e-9  # relative to the set's rating
 
 
@@ -144,18 +145,27 @@ def _droop_power(net: Network, f_src: NDArray[np.float64]) -> NDArray[np.float64
     return out
 
 
-def _linear(net: Network, arr: Arrays, f_node: NDArray, emf: NDArray[np.complex128],
+def _linear(net: Network, factors: NDArray[np.float64] | None, f_node: NDArray, emf: NDArray[np.complex128],
             extra_y: NDArray[np.complex128] | None = None) -> tuple[NDArray, NDArray, NDArray[np.bool_]]:
     """One stacked linear solve at the fundamental; returns (v (S,N), y_elem (S,E), failed (S,))."""
-    node_of_elem = np.where(arr.a >= 0, arr.a, arr.b)
-    omega = 2 * np.pi * f_node[:, node_of_elem]
-    y_el = element_admittances(arr.kind, arr.r, arr.l, arr.c, arr.y_fixed, omega)
+    arr = net.element_arrays()
+    if np.all(f_node == f_node[:, :1]):  # one frequency per member: no per-element gather
+        omega = 2 * np.pi * f_node[:, :1]
+    else:
+        omega = 2 * np.pi * f_node[:, np.where(arr["a"] >= 0, arr["a"], arr["b"])]
+    y_el = net.element_model().admittances(factors, omega)
+    if y_el.shape[0] != emf.shape[0]:  # nominal elements shared by a stack of EMFs or frequencies
+        y_el = np.broadcast_to(y_el, (emf.shape[0], y_el.shape[1])).copy()
     if extra_y is not None:
         y_el = y_el + extra_y
-    ymat = assemble(net.n_nodes, arr.a, arr.b, y_el)
     inj = np.zeros((emf.shape[0], net.n_nodes), dtype=complex)
     for k, role in enumerate(net.sources):
         inj[:, role.node] += emf[:, k] * y_el[:, role.element_index]
+    if y_el.shape[0] >= REDUCE_MIN_STACK:
+        plan = plan_elimination(net.n_nodes, arr["a"], arr["b"], np.array([r.node for r in net.sources], dtype=np.intp))
+        v, failed = reduced_solve(plan, y_el, inj)
+        return v, y_el, failed
+    ymat = assemble(net.n_nodes, arr["a"], arr["b"], y_el)
     v, failed = stacked_solve(ymat, inj)
     if ymat.shape[0] == 1 and ymat.shape[-1] > 1:
         _check_conditioning(net, ymat[0], y_el[0])
@@ -202,8 +212,9 @@ def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, h
         Given-phasor mode: every source keeps its EMF magnitude and takes this angle
         (degrees); no role is solved.
     """
-    arr = element_arrays(net, factors)
-    s = arr.r.shape[0]
+    factors = None if factors is None else np.asarray(factors, dtype=float)
+    arr = net.element_arrays()
+    s = 1 if factors is None else factors.shape[0]
     n_src = len(net.sources)
     islands = _node_islands(net)
     f_node = np.full((s, net.n_nodes), net.frequency_hz)
@@ -257,10 +268,11 @@ def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, h
     for isl_id, isl in enumerate(islands):
         node_island[sorted(isl)] = isl_id
     src_nodes = np.array([r.node for r in net.sources], dtype=int)
-    y_nl = np.zeros((s, len(net.elements)), dtype=complex)
     nl_elems = [(j, e) for j, e in enumerate(net.elements) if e.owner_table == "loads" and e.part == "fundamental"]
+    y_nl = np.zeros((s, len(net.elements)), dtype=complex) if nl_elems else None
+    y_fixed = None if not nl_elems else net.element_model().admittances(factors, 2 * np.pi * net.frequency_hz)
 
-    def evaluate(x: NDArray, y_extra: NDArray) -> tuple[NDArray, NDArray, NDArray, NDArray, NDArray]:
+    def evaluate(x: NDArray, y_extra: NDArray | None) -> tuple[NDArray, NDArray, NDArray, NDArray, NDArray]:
         fn = f_node.copy() if x.shape[0] == s else np.repeat(f_node, x.shape[0] // s, axis=0)
         ang = angles.copy() if x.shape[0] == s else np.repeat(angles, x.shape[0] // s, axis=0)
         for m, isl_id in enumerate(free_islands):
@@ -268,11 +280,10 @@ def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, h
         for m, k in enumerate(angle_unknowns):
             ang[:, k] = x[:, len(free_islands) + m]
         reps = x.shape[0] // s
-        a2 = arr if reps == 1 else Arrays(arr.kind, arr.a, arr.b, np.repeat(arr.r, reps, 0), np.repeat(arr.l, reps, 0),
-                                          np.repeat(arr.c, reps, 0), np.repeat(arr.y_fixed, reps, 0))
+        f_rep = factors if reps == 1 or factors is None else np.repeat(factors, reps, 0)
         emf = _source_emf_magnitude(net, fn) * np.exp(1j * np.radians(ang))
-        ye = y_extra if reps == 1 else np.repeat(y_extra, reps, 0)
-        v, y_el, failed = _linear(net, a2, fn, emf, ye)
+        ye = y_extra if reps == 1 or y_extra is None else np.repeat(y_extra, reps, 0)
+        v, y_el, failed = _linear(net, f_rep, fn, emf, ye)
         i_src = (emf - v[:, src_nodes]) * y_el[:, [r.element_index for r in net.sources]] if n_src else emf
         p_emf = (emf * np.conj(i_src)).real
         return v, y_el, fn, emf, p_emf if n_src else np.zeros((x.shape[0], 0)), failed  # type: ignore[return-value]
@@ -312,13 +323,15 @@ def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, h
         if not nl_elems:
             break
         v, *_ = evaluate(x, y_nl)
+        assert y_nl is not None
+        assert y_fixed is not None
         y_new = np.zeros_like(y_nl)
         for j, e in nl_elems:
             ld = net.bench.load(e.owner)
             assert isinstance(ld, NonlinearLoad)
             # constant fundamental power: Y = conj(S1) / |V|^2, the compiled Y is at rated voltage
             ratio = ld.rated_voltage**2 / np.maximum(np.abs(v[:, e.node_a]) ** 2, 1e-12)
-            y_new[:, j] = arr.y_fixed[:, j] * (ratio - 1.0)
+            y_new[:, j] = y_fixed[:, j] * (ratio - 1.0)
         change = np.max(np.abs(y_new - y_nl)) if y_nl.size else 0.0
         y_nl = y_new
         if change < 1e-12:
@@ -326,7 +339,7 @@ def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, h
     if not converged:
         warnings.append(f"source-role iteration did not converge in {MAX_NEWTON} steps")
     v, y_el, fn, emf, _, failed = evaluate(x, y_nl)
-    i_el = _currents(arr.a, arr.b, v, y_el)
+    i_el = _currents(arr["a"], arr["b"], v, y_el)
     i_src = (emf - v[:, src_nodes]) * y_el[:, [r.element_index for r in net.sources]] if n_src else np.zeros((s, 0))
 
     orders = [1]
@@ -358,15 +371,15 @@ def _solve_harmonics(net: Network, v1: NDArray, i1: NDArray, f_node: NDArray,
     f0 = float(np.mean(f_node))
     for h in orders:
         net_h = compile_network(net.bench, net.state, frequency_hz=f0, harmonic=h)
-        arr = element_arrays(net_h, factors)
+        arr = net_h.element_arrays()
         s = v1.shape[0]
-        omega = np.full((s, len(net_h.elements)), 2 * np.pi * f0 * h)
-        y_el = element_admittances(arr.kind, arr.r, arr.l, arr.c, arr.y_fixed, omega)
+        y_el = net_h.element_model().admittances(factors, 2 * np.pi * f0 * h)
+        if y_el.shape[0] != s:
+            y_el = np.broadcast_to(y_el, (s, y_el.shape[1])).copy()
         # the nonlinear load is a current source at harmonics, not an admittance
         for j, e in enumerate(net_h.elements):
             if e.owner_table == "loads" and e.owner in net.nonlinear_loads:
                 y_el[:, j] = 0
-        ymat = assemble(net_h.n_nodes, arr.a, arr.b, y_el)
         inj = np.zeros((s, net_h.n_nodes), dtype=complex)
         for ld in loads:
             assert isinstance(ld, NonlinearLoad)
@@ -379,8 +392,12 @@ def _solve_harmonics(net: Network, v1: NDArray, i1: NDArray, f_node: NDArray,
             theta = np.angle(v1[:, node1])
             i_h = spec.magnitude * i_fund * np.exp(1j * (np.radians(spec.angle) + h * theta))
             inj[:, net_h.bus_node[ld.bus]] -= i_h
-        v_h, _ = stacked_solve(ymat, inj)
-        i_el_h = _currents(arr.a, arr.b, v_h, y_el)
+        if s >= REDUCE_MIN_STACK:
+            injected = np.array([net_h.bus_node[ld.bus] for ld in loads], dtype=np.intp)
+            v_h, _ = reduced_solve(plan_elimination(net_h.n_nodes, arr["a"], arr["b"], injected), y_el, inj)
+        else:
+            v_h, _ = stacked_solve(assemble(net_h.n_nodes, arr["a"], arr["b"], y_el), inj)
+        i_el_h = _currents(arr["a"], arr["b"], v_h, y_el)
         # nonlinear load elements carry their injected harmonic current
         for j, e in enumerate(net_h.elements):
             if e.owner_table == "loads" and e.owner in net.nonlinear_loads:
