@@ -100,7 +100,7 @@ def predict_state(bench: Bench, state: BenchState, *, n_samples: int = DEFAULT_S
         labels_mc, values = _sampled_rows(net, sample_factors(net, n_samples, seed), harmonics, band_locations)
         index = {(lab.location, lab.quantity): k for k, lab in enumerate(labels)}
         rows = np.array([index[(lab.location, lab.quantity)] for lab in labels_mc], dtype=np.intp)
-        pct = _percentiles(np.where(np.isfinite(values), values, np.nan))
+        pct = _percentiles(values)
         if band_locations is not None:
             low, high = np.full_like(low, np.nan), np.full_like(high, np.nan)
         nom = nominal[0, rows]
@@ -124,7 +124,10 @@ slower per sample on a two-core machine)."""
 
 def _sampled_rows(net: Network, factors: NDArray[np.float64], harmonics: bool,
                   locations: set[str] | None) -> tuple[list[RowLabel], NDArray[np.float64]]:
-    """Every predicted quantity of every tolerance sample (S, rows), solved in blocks of ``BAND_BLOCK``."""
+    """Every predicted quantity of every tolerance sample, by row (rows, S), solved in blocks of ``BAND_BLOCK``.
+
+    Row-major, so that each row's samples are contiguous for the percentile selection.
+    """
     n = factors.shape[0]
     labels: list[RowLabel] = []
     out = np.empty((0, 0))
@@ -133,38 +136,44 @@ def _sampled_rows(net: Network, factors: NDArray[np.float64], harmonics: bool,
         block = slice(start, min(start + BAND_BLOCK, n))
         block_labels, values = quantity_arrays(solve_network(net, factors[block], harmonics=harmonics), locations)
         if start == 0:
-            labels, out = block_labels, np.empty((n, values.shape[1]))
+            labels, out = block_labels, np.empty((values.shape[1], n))
             index = {(lab.location, lab.quantity): k for k, lab in enumerate(labels)}
         if block_labels == labels:
-            out[block] = values
+            out[:, block] = values.T
             continue
         # a row that depends on the values (e.g. v_across when no slip): align by name, NaN where absent
-        out[block] = np.nan
+        out[:, block] = np.nan
         for k, lab in enumerate(block_labels):
             if (lab.location, lab.quantity) in index:
-                out[block, index[(lab.location, lab.quantity)]] = values[:, k]
+                out[index[(lab.location, lab.quantity)], block] = values[:, k]
     return labels, out
 
 
-def _percentiles(values: NDArray[np.float64]) -> NDArray[np.float64]:
-    """The band percentiles per column (linear interpolation, as numpy's default), NaN ignored.
+def _percentiles(by_row: NDArray[np.float64]) -> NDArray[np.float64]:
+    """The band percentiles of each row of ``by_row`` (rows, S) (linear interpolation, as numpy's default).
 
-    One in-place partition over all columns finds the order statistics; columns holding
-    NaN take the slower NaN-aware path.
+    Non-finite samples are ignored. The array is reordered in place: one partition per row
+    finds the order statistics; rows holding NaN or inf take the slower NaN-aware path.
     """
-    n = values.shape[0]
-    nan_cols = np.isnan(values).any(axis=0)
-    out = np.empty((len(BAND_PERCENTILES), values.shape[1]))
+    n = by_row.shape[1]
+    bad_rows = ~np.isfinite(by_row).all(axis=1)
+    out = np.empty((len(BAND_PERCENTILES), by_row.shape[0]))
     pos = np.array(BAND_PERCENTILES) / 100.0 * (n - 1)
     lo, hi = np.floor(pos).astype(int), np.ceil(pos).astype(int)
-    clean = values[:, ~nan_cols]
-    clean.partition(np.unique(np.concatenate([lo, hi])), axis=0)
-    frac = (pos - lo)[:, None]
-    out[:, ~nan_cols] = clean[lo] * (1 - frac) + clean[hi] * frac
-    if nan_cols.any():
+    kth = np.unique(np.concatenate([lo, hi]))
+    frac = pos - lo
+    if bad_rows.any():
+        clean = by_row[~bad_rows]
+        clean.partition(kth, axis=1)
+        out[:, ~bad_rows] = (clean[:, lo] * (1 - frac) + clean[:, hi] * frac).T
+        rest = by_row[bad_rows]
+        rest[~np.isfinite(rest)] = np.nan
         with warnings.catch_warnings():  # rows that are NaN in every sample (a pf of no current) stay NaN
             warnings.simplefilter("ignore", RuntimeWarning)
-            out[:, nan_cols] = np.nanpercentile(values[:, nan_cols], BAND_PERCENTILES, axis=0)
+            out[:, bad_rows] = np.nanpercentile(rest, BAND_PERCENTILES, axis=1)
+    else:
+        by_row.partition(kth, axis=1)
+        out[:] = (by_row[:, lo] * (1 - frac) + by_row[:, hi] * frac).T
     return out
 
 

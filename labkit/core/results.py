@@ -40,37 +40,45 @@ class _Rows:
         if self.locations is not None and location not in self.locations and name != "loading":
             return
         q = quantity(name)  # every emitted name must be registered
-        arr = np.broadcast_to(np.asarray(values, dtype=float), (self.n,)) * q.scale
+        arr = np.asarray(values, dtype=float)
+        if arr.shape != (self.n,):
+            arr = np.broadcast_to(arr, (self.n,))
+        if q.scale != 1.0:
+            arr = arr * q.scale
         self.labels.append(RowLabel(location, name, status, note))
         self.values.append(arr)
 
 
-def _power_rows(rows: _Rows, location: str, v: NDArray, i: NDArray, harmonic: bool) -> None:
-    """v, i: (S, H) phasors at one place (current in the location's reference direction)."""
+def _power_rows(rows: _Rows, locations: list[str], v: NDArray, i: NDArray, harmonic: bool) -> None:
+    """v, i: (S, H, M) phasors at M places (currents in each place's reference direction), one pass for all."""
     v_rms = np.sqrt(np.sum(np.abs(v) ** 2, axis=1))
     i_rms = np.sqrt(np.sum(np.abs(i) ** 2, axis=1))
     s1 = v[:, 0] * np.conj(i[:, 0])
     p = np.sum((v * np.conj(i)).real, axis=1)
     s = v_rms * i_rms
+    i_arg = np.angle(i[:, 0])
     with np.errstate(invalid="ignore", divide="ignore"):
         pf = np.where(s > 0, p / s, np.nan)
         pf1 = np.where(np.abs(s1) > 0, s1.real / np.abs(s1), np.nan)
-    phase = wrap_deg(np.degrees(np.angle(i[:, 0]) - np.angle(v[:, 0])))
-    rows.add(location, "i_rms", i_rms)
-    rows.add(location, "i_angle", wrap_deg(np.degrees(np.angle(i[:, 0]))))
-    rows.add(location, "p", p)
-    rows.add(location, "q1", s1.imag)
-    rows.add(location, "s", s)
-    rows.add(location, "pf", pf, note=pf_sense(float(s1.imag[0]), float(s1.real[0])))
-    rows.add(location, "phase", phase)
-    if harmonic:
         i1 = np.abs(i[:, 0])
-        with np.errstate(invalid="ignore", divide="ignore"):
-            rows.add(location, "thd_i", np.sqrt(np.maximum(i_rms**2 - i1**2, 0)) / i1)
-        rows.add(location, "i1_rms", i1)
-        rows.add(location, "p1", s1.real)
-        rows.add(location, "pf1", pf1)
-        rows.add(location, "crest_i", _crest(i))
+        thd_i = np.sqrt(np.maximum(i_rms**2 - i1**2, 0)) / i1 if harmonic else None
+    phase = wrap_deg(np.degrees(i_arg - np.angle(v[:, 0])))
+    i_angle = wrap_deg(np.degrees(i_arg))
+    for m, location in enumerate(locations):
+        rows.add(location, "i_rms", i_rms[:, m])
+        rows.add(location, "i_angle", i_angle[:, m])
+        rows.add(location, "p", p[:, m])
+        rows.add(location, "q1", s1.imag[:, m])
+        rows.add(location, "s", s[:, m])
+        rows.add(location, "pf", pf[:, m], note=pf_sense(float(s1.imag[0, m]), float(s1.real[0, m])))
+        rows.add(location, "phase", phase[:, m])
+        if harmonic:
+            assert thd_i is not None
+            rows.add(location, "thd_i", thd_i[:, m])
+            rows.add(location, "i1_rms", i1[:, m])
+            rows.add(location, "p1", s1.real[:, m])
+            rows.add(location, "pf1", pf1[:, m])
+            rows.add(location, "crest_i", _crest(i[:, :, m]))
 
 
 def _crest(x: NDArray) -> NDArray:
@@ -82,7 +90,9 @@ def _crest(x: NDArray) -> NDArray:
 def _crest_impl(x: NDArray) -> NDArray:
     t = np.linspace(0.0, 1.0, 256, endpoint=False)
     orders = np.asarray(_crest_impl.orders)  # type: ignore[attr-defined]
-    wave = np.sqrt(2) * np.real(x[:, :, None] * np.exp(2j * np.pi * orders[None, :, None] * t[None, None, :])).sum(1)
+    # sqrt(2) Re(sum_h X_h e^(j 2 pi h t)) as two real matrix products over the orders
+    arg = 2 * np.pi * orders[:, None] * t[None, :]
+    wave = np.sqrt(2) * (x.real @ np.cos(arg) - x.imag @ np.sin(arg))
     rms = np.sqrt(np.mean(wave**2, axis=1))
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.max(np.abs(wave), axis=1) / rms
@@ -100,34 +110,40 @@ def quantity_arrays(sol: Solution, locations: set[str] | None = None) -> tuple[l
     rows = _Rows(sol.n_samples, locations)
     dead_note = "de-energized: no source connected; capacitance may still hold charge"
 
-    # buses
+    # buses, all at once
+    live = [bus for bus in bench.bus_names if bus in net.bus_node and (locations is None or bus in locations)]
+    nodes = [net.bus_node[bus] for bus in live]
+    v_bus = sol.v[:, :, nodes]
+    v_rms_bus = np.sqrt(np.sum(np.abs(v_bus) ** 2, axis=1))
+    v_angle_bus = wrap_deg(np.degrees(np.angle(v_bus[:, 0])))
+    v1_bus = np.abs(v_bus[:, 0])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        thd_v_bus = np.sqrt(np.maximum(v_rms_bus**2 - v1_bus**2, 0)) / v1_bus
+    column = {bus: m for m, bus in enumerate(live)}
     for bus in bench.bus_names:
         if bus not in net.bus_node:
             rows.add(bus, "v_rms", 0.0, "de-energized", dead_note)
             continue
-        node = net.bus_node[bus]
-        v = sol.v[:, :, node]
-        v_rms = np.sqrt(np.sum(np.abs(v) ** 2, axis=1))
-        rows.add(bus, "v_rms", v_rms)
-        rows.add(bus, "v_angle", wrap_deg(np.degrees(np.angle(v[:, 0]))))
-        rows.add(bus, "frequency", sol.island_frequency_hz[:, node])
+        if bus not in column:
+            continue  # not asked for
+        m = column[bus]
+        rows.add(bus, "v_rms", v_rms_bus[:, m])
+        rows.add(bus, "v_angle", v_angle_bus[:, m])
+        rows.add(bus, "frequency", sol.island_frequency_hz[:, nodes[m]])
         if harmonic:
-            v1 = np.abs(v[:, 0])
-            rows.add(bus, "v1_rms", v1)
-            with np.errstate(invalid="ignore", divide="ignore"):
-                rows.add(bus, "thd_v", np.sqrt(np.maximum(v_rms**2 - v1**2, 0)) / v1)
+            rows.add(bus, "v1_rms", v1_bus[:, m])
+            rows.add(bus, "thd_v", thd_v_bus[:, m])
             for k, h in enumerate(sol.orders[1:], start=1):
-                rows.add(bus, f"v_h{h}", np.abs(v[:, k]))
+                rows.add(bus, f"v_h{h}", np.abs(v_bus[:, k, m]))
 
-    # element ends (current from the bus into the element)
+    # element ends (current from the bus into the element), all at once
     end_currents = end_current_phasors(sol)
-
-    for (owner, bus_name), i in end_currents.items():
-        location = element_end(owner, bus_name)
-        if locations is not None and location not in locations:
-            continue  # not asked for: skip the work, not only the row
-        v = sol.v[:, :, net.bus_node[bus_name]]
-        _power_rows(rows, location, v, i, harmonic)
+    ends = [(element_end(owner, bus_name), key) for key in end_currents for owner, bus_name in (key,)]
+    ends = [(location, key) for location, key in ends if locations is None or location in locations]
+    if ends:
+        i_ends = np.stack([end_currents[key] for _, key in ends], axis=-1)
+        v_ends = sol.v[:, :, [net.bus_node[key[1]] for _, key in ends]]
+        _power_rows(rows, [location for location, _ in ends], v_ends, i_ends, harmonic)
 
     # element-level quantities
     p_end = {lab.location: val for lab, val in zip(rows.labels, rows.values, strict=True) if lab.quantity == "p"}

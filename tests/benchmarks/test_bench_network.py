@@ -150,6 +150,10 @@ def test_benchmark_demo_bench() -> None:
     net = compile_network(bench, state)
     figures["role_solve_ms"] = _best(lambda: solve_network(net, harmonics=False), repeat=5) * 1e3
     figures["band_10k_ms"] = _best(lambda: predict_state(bench, state, n_samples=10_000), repeat=3) * 1e3
+    # a harmonic step: the nonlinear load's fixed point and its harmonic orders, crest factors included
+    harmonic = states_after_steps(bench, load_template(ROOT / "lab3-harmonics.toml", bench).template)[-1]
+    figures["band_10k_harmonic_step_ms"] = _best(lambda: predict_state(bench, harmonic, n_samples=10_000),
+                                                 repeat=3) * 1e3
     _report("demo_bench", figures)
 
 
