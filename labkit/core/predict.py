@@ -19,7 +19,7 @@ from labkit.core.bench import Bench
 from labkit.core.defaults import BAND_PERCENTILES, DEFAULT_SAMPLES, DEFAULT_SEED
 from labkit.core.errors import LabkitError
 from labkit.core.network import Network, NetworkError, compile_network
-from labkit.core.results import RowLabel, quantity_arrays
+from labkit.core.results import RowLabel, quantity_arrays, quantity_rows
 from labkit.core.solve import Solution, sample_factors, solve_network, thevenin_impedance
 from labkit.core.state import BenchState, apply_step, initial_state, intermediate_states
 from labkit.core.template import SessionTemplate
@@ -134,18 +134,19 @@ def _sampled_rows(net: Network, factors: NDArray[np.float64], harmonics: bool,
     index: dict[tuple[str, str], int] = {}
     for start in range(0, n, BAND_BLOCK):
         block = slice(start, min(start + BAND_BLOCK, n))
-        block_labels, values = quantity_arrays(solve_network(net, factors[block], harmonics=harmonics), locations)
+        block_labels, values = quantity_rows(solve_network(net, factors[block], harmonics=harmonics), locations)
         if start == 0:
-            labels, out = block_labels, np.empty((values.shape[1], n))
+            labels, out = block_labels, np.empty((len(values), n))
             index = {(lab.location, lab.quantity): k for k, lab in enumerate(labels)}
         if block_labels == labels:
-            out[:, block] = values.T
+            for k, row in enumerate(values):
+                out[k, block] = row
             continue
         # a row that depends on the values (e.g. v_across when no slip): align by name, NaN where absent
         out[:, block] = np.nan
         for k, lab in enumerate(block_labels):
             if (lab.location, lab.quantity) in index:
-                out[index[(lab.location, lab.quantity)], block] = values[:, k]
+                out[index[(lab.location, lab.quantity)], block] = values[k]
     return labels, out
 
 
@@ -162,18 +163,14 @@ def _percentiles(by_row: NDArray[np.float64]) -> NDArray[np.float64]:
     lo, hi = np.floor(pos).astype(int), np.ceil(pos).astype(int)
     kth = np.unique(np.concatenate([lo, hi]))
     frac = pos - lo
-    if bad_rows.any():
-        clean = by_row[~bad_rows]
-        clean.partition(kth, axis=1)
-        out[:, ~bad_rows] = (clean[:, lo] * (1 - frac) + clean[:, hi] * frac).T
-        rest = by_row[bad_rows]
+    rest = by_row[bad_rows]  # a copy, taken before the partition reorders the rows
+    by_row.partition(kth, axis=1)
+    out[:] = (by_row[:, lo] * (1 - frac) + by_row[:, hi] * frac).T
+    if rest.size:
         rest[~np.isfinite(rest)] = np.nan
         with warnings.catch_warnings():  # rows that are NaN in every sample (a pf of no current) stay NaN
             warnings.simplefilter("ignore", RuntimeWarning)
             out[:, bad_rows] = np.nanpercentile(rest, BAND_PERCENTILES, axis=1)
-    else:
-        by_row.partition(kth, axis=1)
-        out[:] = (by_row[:, lo] * (1 - frac) + by_row[:, hi] * frac).T
     return out
 
 

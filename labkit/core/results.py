@@ -103,6 +103,12 @@ def quantity_arrays(sol: Solution, locations: set[str] | None = None) -> tuple[l
 
     With ``locations``, only rows at those locations (and every ``loading`` row, for the rating checks).
     """
+    labels, values = quantity_rows(sol, locations)
+    return labels, np.stack(values, axis=1) if values else np.zeros((sol.n_samples, 0))
+
+
+def quantity_rows(sol: Solution, locations: set[str] | None = None) -> tuple[list[RowLabel], list[NDArray]]:
+    """As :func:`quantity_arrays`, the values left as one (S,) array per row (no stacking)."""
     net = sol.network
     bench = net.bench
     _crest_impl.orders = sol.orders  # type: ignore[attr-defined]
@@ -159,7 +165,7 @@ def quantity_arrays(sol: Solution, locations: set[str] | None = None) -> tuple[l
             rows.add(br.id, "regulation", _regulation(sol, br.id, va, vb))
     _loading_rows(sol, rows, end_currents)
     _open_switch_rows(sol, rows)
-    return rows.labels, np.stack(rows.values, axis=1) if rows.values else np.zeros((sol.n_samples, 0))
+    return rows.labels, rows.values
 
 
 def end_current_phasors(sol: Solution, *, warn: bool = True) -> dict[tuple[str, str], NDArray]:
@@ -276,7 +282,7 @@ def _open_switch_rows(sol: Solution, rows: _Rows) -> None:
             rows.add(sw.id, "v_across", np.abs(sol.v[:, 0, na] - sol.v[:, 0, nb]))
 
 
-__all__ = ["RowLabel", "end_current_phasors", "quantity_arrays"]
+__all__ = ["RowLabel", "end_current_phasors", "quantity_arrays", "quantity_rows"]
 
 
 # quantities that change sign when a current's reference direction is reversed; angles turn by 180 deg
