@@ -121,7 +121,7 @@ def test_tolerance_bands_do_not_depend_on_the_sample_blocks(demo_bench: Bench, t
     state = states_after_steps(demo_bench, load_template(DEMO / f"{template}.toml", demo_bench).template)[-1]
     monkeypatch.setattr(predict, "BAND_BLOCK", 10**9)
     whole = predict_state(demo_bench, state, n_samples=700, seed=5)
-    monkeypatch.setattr(predict, "BAND_BLOCK", 128)
+    monkeypatch.setattr(predict, "BAND_BLOCK", 1)  # the smallest blocks: 64 samples
     blocked = predict_state(demo_bench, state, n_samples=700, seed=5)
     assert [lab.location for lab in whole.labels] == [lab.location for lab in blocked.labels]
     np.testing.assert_allclose(blocked.band_low, whole.band_low, rtol=1e-9, atol=1e-12)

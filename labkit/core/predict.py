@@ -116,15 +116,17 @@ def predict_state(bench: Bench, state: BenchState, *, n_samples: int = DEFAULT_S
     return pred
 
 
-BAND_BLOCK = 2000
-"""Tolerance samples solved at a time: a block's temporaries stay in cache and in the allocator's
-reach, where one block of 10,000 would fault in fresh memory for every array (measured 2-4 x
-slower per sample on a two-core machine)."""
+BAND_BLOCK = 110_000
+"""Sample x element values solved at a time (2,000 samples of a 55-element network): a block's
+temporaries stay in cache and in the allocator's reach, where 10,000 samples of such a network at
+once fault in fresh memory for every array (measured 2-4 x slower per sample on a two-core
+machine); a small network takes bigger blocks, saving per-block overhead."""
+BAND_BLOCK_MAX_SAMPLES = 4000  # beyond this the per-sample arrays of the harmonic orders outgrow the caches
 
 
 def _sampled_rows(net: Network, factors: NDArray[np.float64], harmonics: bool,
                   locations: set[str] | None) -> tuple[list[RowLabel], NDArray[np.float64]]:
-    """Every predicted quantity of every tolerance sample, by row (rows, S), solved in blocks of ``BAND_BLOCK``.
+    """Every predicted quantity of every tolerance sample, by row (rows, S), solved in blocks (``BAND_BLOCK``).
 
     Row-major, so that each row's samples are contiguous for the percentile selection.
     """
@@ -132,8 +134,9 @@ def _sampled_rows(net: Network, factors: NDArray[np.float64], harmonics: bool,
     labels: list[RowLabel] = []
     out = np.empty((0, 0))
     index: dict[tuple[str, str], int] = {}
-    for start in range(0, n, BAND_BLOCK):
-        block = slice(start, min(start + BAND_BLOCK, n))
+    step = min(max(BAND_BLOCK // max(len(net.elements), 1), 64), BAND_BLOCK_MAX_SAMPLES)
+    for start in range(0, n, step):
+        block = slice(start, min(start + step, n))
         block_labels, values = quantity_rows(solve_network(net, factors[block], harmonics=harmonics), locations)
         if start == 0:
             labels, out = block_labels, np.empty((len(values), n))
