@@ -62,8 +62,8 @@ def _power_rows(rows: _Rows, locations: list[str], v: NDArray, i: NDArray, harmo
         pf1 = np.where(np.abs(s1) > 0, s1.real / np.abs(s1), np.nan)
         i1 = np.abs(i[:, 0])
         thd_i = np.sqrt(np.maximum(i_rms**2 - i1**2, 0)) / i1 if harmonic else None
-    phase = wrap_deg(np.degrees(i_arg - np.angle(v[:, 0])))
-    i_angle = wrap_deg(np.degrees(i_arg))
+    phase = _half_turn_positive(np.degrees(np.angle(i[:, 0] * np.conj(v[:, 0]))))
+    i_angle = _half_turn_positive(np.degrees(i_arg))
     for m, location in enumerate(locations):
         rows.add(location, "i_rms", i_rms[:, m])
         rows.add(location, "i_angle", i_angle[:, m])
@@ -79,6 +79,11 @@ def _power_rows(rows: _Rows, locations: list[str], v: NDArray, i: NDArray, harmo
             rows.add(location, "p1", s1.real[:, m])
             rows.add(location, "pf1", pf1[:, m])
             rows.add(location, "crest_i", _crest(i[:, :, m]))
+
+
+def _half_turn_positive(angle_deg: NDArray) -> NDArray:
+    """An angle from ``np.angle`` in degrees, [-180, 180], on the (-180, 180] of ``wrap_deg``."""
+    return np.where(angle_deg == -180.0, 180.0, angle_deg)
 
 
 def _crest(x: NDArray) -> NDArray:
@@ -196,19 +201,24 @@ _SECTION_VALUES: dict[int, tuple[object, dict]] = {}  # per bench object: its se
 
 def _regulation(sol: Solution, branch_id: str, vs: NDArray, vr: NDArray) -> NDArray:
     """(|Vs|/|A| - |Vr|) / |Vr| with the from-bus as sending end (field-reference §2.1)."""
+    net = sol.network
+    by_branch = net.__dict__.setdefault("_receiving_a", {})  # |A| of the nominal chain, per compiled network
+    if branch_id not in by_branch:
+        by_branch[branch_id] = np.abs(_nominal_a(net, branch_id))
+    return (vs / by_branch[branch_id] - vr) / vr
+
+
+def _nominal_a(net: object, branch_id: str) -> NDArray:
     from labkit.core.lines import bench_section_values, branch_two_port, position_paths
 
-    net = sol.network
-    branch = net.bench.branch(branch_id)
-    cached = _SECTION_VALUES.get(id(net.bench))
+    branch = net.bench.branch(branch_id)  # type: ignore[attr-defined]
+    cached = _SECTION_VALUES.get(id(net.bench))  # type: ignore[attr-defined]
     if cached is None or cached[0] is not net.bench:
         if len(_SECTION_VALUES) > 32:
             _SECTION_VALUES.clear()
-        cached = _SECTION_VALUES[id(net.bench)] = (net.bench, bench_section_values(net.bench))
-    values = cached[1]
-    paths = position_paths(branch, net.state.line_position(branch_id), values)
-    a = branch_two_port(paths, 2 * np.pi * net.frequency_hz).abcd[..., 0, 0]
-    return (vs / np.abs(a) - vr) / vr
+        cached = _SECTION_VALUES[id(net.bench)] = (net.bench, bench_section_values(net.bench))  # type: ignore[attr-defined]
+    paths = position_paths(branch, net.state.line_position(branch_id), cached[1])  # type: ignore[attr-defined]
+    return branch_two_port(paths, 2 * np.pi * net.frequency_hz).abcd[..., 0, 0]  # type: ignore[attr-defined]
 
 
 def _switch_currents(sol: Solution, end_currents: dict[tuple[str, str], NDArray], *,
