@@ -112,6 +112,22 @@ def test_correction_needs_a_reason_and_appends_a_revision(tmp_path):
     assert set(all_rows["reason"].fillna("")) == {"", "misread the range switch"}
 
 
+def test_a_correction_reason_is_cleared_before_the_verdict_shows(tmp_path):
+    # a reason typed for the next correction while the last one is still recording must not be wiped
+    app = _started(tmp_path)
+    rv = app.runner_view
+    row = rv.rows[0]
+    row.entry.value = "12 V"
+    rv.reason.value = "misread the range switch"
+    order = []
+    rv.reason.observe(lambda c: order.append(("reason", c["new"])), names="value")
+    row.verdict.observe(lambda c: order.append(("verdict", "")), names="value")
+    row.entry.value = "119.5 V"
+    assert order[0] == ("reason", "")
+    assert rv.reason.value == ""
+    assert "correction 1" in row.echo.value
+
+
 def test_skip_needs_a_reason_and_moves_on(tmp_path):
     app = _started(tmp_path)
     rv = app.runner_view

@@ -375,6 +375,8 @@ class RunnerView:
                 "'Reason for correction' and press Enter there; your new value is kept here until then", "problem")
             return
         self._awaiting_reason = None
+        if previous is not None:  # consumed now, before anything shows: a reason typed next is never wiped
+            self.reason.value = ""
         # the verdict first (cheap), so it shows before the archive write and the diagnosis
         tol, _ = r.tolerance(exp.spec, parsed, exp.predicted) if math.isfinite(exp.predicted) else (math.nan, "")
         quick = verdict(parsed.value, exp.band_low, exp.band_high, tol, predicted=exp.predicted,
@@ -392,13 +394,13 @@ class RunnerView:
             self._show_not_recorded(row, str(exc))
             return
         except (SessionError, LabkitError) as exc:
+            if previous is not None and not self.reason.value:
+                self.reason.value = reason  # nothing was recorded: the reason stays for another try
             row.verdict.value = message(f"not recorded: {exc}", "problem")
             return
         entry = self.latest_entry(parsed.step_index, parsed.spec_index)
         if entry is not None:
             self._show_entry(row, entry)
-        if previous is not None:
-            self.reason.value = ""
         row.entry.value = ""  # an empty value is ignored by the observer; the recorded text is in the echo
         self._focus_next(row)
         if parsed.quantity == "slip" and self.sync_box.children:
