@@ -489,6 +489,26 @@ def test_truncated_archive_is_a_clear_error(tmp_path: Path) -> None:
     assert _raw_count(good) == 300
 
 
+def test_a_checkpoint_cut_short_is_not_taken_for_truncation(tmp_path: Path) -> None:
+    # A crash during a checkpoint can leave page 1 (with the new page count) written to the main file before
+    # the pages that extend it; the write-ahead log still holds them and SQLite replays it on open (sqlite.org,
+    # "Write-Ahead Logging": readers take the newest copy of a page from the log). Such an archive is sound.
+    path, crashed = tmp_path / "lab.sqlite", tmp_path / "crashed.sqlite"
+    session_id = _filled(path, 5)
+    with SQLiteArchive(path) as a:
+        a._connection.execute("PRAGMA wal_autocheckpoint = 0")  # the new readings stay in the log
+        a.append_readings([reading_row(session_id, 100 + k, note="demo " * 20) for k in range(300)])
+        crashed.write_bytes(path.read_bytes())  # the files as a crash would leave them
+        (tmp_path / "crashed.sqlite-wal").write_bytes((tmp_path / "lab.sqlite-wal").read_bytes())
+    data = bytearray(crashed.read_bytes())
+    page = int.from_bytes(data[16:18], "big")
+    data[28:32] = (len(data) // page + 50).to_bytes(4, "big")  # page 1 counts pages the file does not have yet
+    crashed.write_bytes(bytes(data))
+    with SQLiteArchive(crashed) as other:
+        assert len(other.readings(session_id)) == 305
+        assert other.check() == []
+
+
 def test_foreign_file_is_a_clear_error(tmp_path: Path) -> None:
     path = tmp_path / "notes.sqlite"
     path.write_text("readings: 230 V, 1.2 A\n" * 50)
