@@ -139,62 +139,15 @@ class Network:
 
 
 # -- admittances ---------------------------------------------------------------------------------
-def element_admittances(kind: NDArray, r: NDArray, l: NDArray, c: NDArray, y_fixed: NDArray,  # noqa: E741
-                        omega: float | NDArray) -> NDArray[np.complex128]:
-    """Admittances of stacked elements, shape broadcast of the inputs (..., n_elements).
-
-    ``omega`` broadcasts too (scalar, or (..., 1) for several frequencies). Each
-    kind is evaluated only on its own columns.
-    """
-    r, l, c = np.asarray(r, float), np.asarray(l, float), np.asarray(c, float)  # noqa: E741
-    y_fixed = np.asarray(y_fixed, complex)
-    w = np.asarray(omega, dtype=float)
-    shape = np.broadcast_shapes(r.shape, l.shape, c.shape, y_fixed.shape, w.shape)
-    kind = np.asarray(kind)
-    if kind.ndim > 1:  # per-configuration kinds (a padded batch): evaluate each kind on its flat entries
-        kb = np.broadcast_to(kind, shape).ravel()
-        rf, lf, cf = (np.broadcast_to(x, shape).ravel() for x in (r, l, c))
-        wf, yf = np.broadcast_to(w, shape).ravel(), np.broadcast_to(y_fixed, shape).ravel()
-        flat = np.empty(kb.size, dtype=complex)
-        ser, par, fix = np.flatnonzero(kb == 0), np.flatnonzero(kb == 1), np.flatnonzero(kb == 2)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            cs = cf[ser]
-            x = wf[ser] * lf[ser] - np.where(np.isfinite(cs), 1.0 / (wf[ser] * cs), 0.0)
-            flat[ser] = 1.0 / (rf[ser] + 1j * x)
-            rp, lp = rf[par], lf[par]
-            flat[par] = (np.where(np.isfinite(rp), 1.0 / rp, 0.0)
-                         + 1j * (wf[par] * cf[par] - np.where(np.isfinite(lp), 1.0 / (wf[par] * lp), 0.0)))
-        flat[fix] = yf[fix]
-        return flat.reshape(shape)
-    out = np.empty(shape, dtype=complex)
-
-    def cols(x: NDArray, sel: NDArray) -> NDArray:
-        return np.broadcast_to(x, shape)[..., sel]
-
-    ser, par, fix = np.flatnonzero(kind == 0), np.flatnonzero(kind == 1), np.flatnonzero(kind == 2)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        if ser.size:
-            ws, cs = cols(w, ser), cols(c, ser)
-            x = ws * cols(l, ser) - np.where(np.isfinite(cs), 1.0 / (ws * cs), 0.0)
-            out[..., ser] = 1.0 / (cols(r, ser) + 1j * x)
-        if par.size:
-            wp, rp, lp = cols(w, par), cols(r, par), cols(l, par)
-            g = np.where(np.isfinite(rp), 1.0 / rp, 0.0)
-            b = wp * cols(c, par) - np.where(np.isfinite(lp), 1.0 / (wp * lp), 0.0)
-            out[..., par] = g + 1j * b
-    if fix.size:
-        out[..., fix] = cols(y_fixed, fix)
-    return out
-
-
 @dataclass(frozen=True)
 class ElementModel:
     """A network's element admittances as a function of tolerance factors, prepared once.
 
-    The stacked path of :func:`element_admittances` builds R, L and C arrays for every sample and
-    evaluates every term of every kind; here each kind keeps only the terms its elements have
-    (a pi section's shunt is ``jwC`` alone, a resistive load ``1/R`` alone) and samples only the
-    factors of those terms, which is what a 10,000-sample tolerance band spends its time on.
+    Kinds: ``series`` 1 / (R + jwL + 1/(jwC)), C absent is ``inf``; ``parallel`` 1/R + 1/(jwL) + jwC,
+    R and L absent are ``inf``, C absent is 0; ``fixed`` a given admittance. Each kind keeps only the
+    terms its elements have (a pi section's shunt is ``jwC`` alone, a resistive load ``1/R`` alone)
+    and samples only the factors of those terms, which is what a 10,000-sample tolerance band
+    spends its time on.
     ``factors`` are (S, n_params) multipliers of ``net.parameters``; a parameter index of -1
     means "not varied".
     """

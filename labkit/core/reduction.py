@@ -163,14 +163,14 @@ def reduced_solve(plan: EliminationPlan, y: NDArray[np.complex128],
     yt = np.ascontiguousarray(y.T)  # (E, S): each element's samples contiguous
     columns: list[NDArray | None] = [*yt, *([None] * (plan.n_columns - plan.n_elements))]
     weights: list[tuple[NDArray, NDArray]] = []
-    bad = np.zeros(s, dtype=bool)
+    weak = np.zeros(s, dtype=bool)
     with np.errstate(divide="ignore", invalid="ignore"):
         for step in plan.steps:
             y_p = _total(columns, step.cols_p, s)
             y_q = _total(columns, step.cols_q, s)
             y_s = _total(columns, step.cols_s, s)
             d = y_p + y_q + y_s
-            bad |= ~(np.abs(d) > WEAK_PIVOT * (np.abs(y_p) + np.abs(y_q) + np.abs(y_s)))
+            weak |= ~(np.abs(d) > WEAK_PIVOT * (np.abs(y_p) + np.abs(y_q) + np.abs(y_s)))
             t_p, t_q = y_p / d, y_q / d
             if step.new_pq >= 0:
                 columns[step.new_pq] = t_p * y_q
@@ -195,7 +195,7 @@ def reduced_solve(plan: EliminationPlan, y: NDArray[np.complex128],
         if step.q != NEUTRAL:
             vi += t_q * v[:, step.q]
         v[:, step.node] = vi
-    redo = bad | (~failed & ~np.isfinite(v).all(axis=1))
+    redo = weak | (~failed & ~np.isfinite(v).all(axis=1))
     if np.any(redo):  # the few members elimination cannot take: the full matrix, with pivoting
         v[redo], failed[redo] = stacked_solve(assemble(plan.n_nodes, plan.a, plan.b, y[redo]), inj[redo])
     if np.any(failed):

@@ -14,6 +14,7 @@ from numpy.typing import NDArray
 
 from labkit.core.conventions import pf_sense, wrap_deg
 from labkit.core.locations import element_end
+from labkit.core.network import Network
 from labkit.core.quantities import quantity
 from labkit.core.solve import Solution
 
@@ -149,7 +150,7 @@ def quantity_rows(sol: Solution, locations: set[str] | None = None) -> tuple[lis
 
     # element ends (current from the bus into the element), all at once
     end_currents = end_current_phasors(sol)
-    ends = [(element_end(owner, bus_name), key) for key in end_currents for owner, bus_name in (key,)]
+    ends = [(element_end(*key), key) for key in end_currents]
     ends = [(location, key) for location, key in ends if locations is None or location in locations]
     if ends:
         i_ends = np.stack([end_currents[key] for _, key in ends], axis=-1)
@@ -208,17 +209,17 @@ def _regulation(sol: Solution, branch_id: str, vs: NDArray, vr: NDArray) -> NDAr
     return (vs / by_branch[branch_id] - vr) / vr
 
 
-def _nominal_a(net: object, branch_id: str) -> NDArray:
+def _nominal_a(net: Network, branch_id: str) -> NDArray:
     from labkit.core.lines import bench_section_values, branch_two_port, position_paths
 
-    branch = net.bench.branch(branch_id)  # type: ignore[attr-defined]
-    cached = _SECTION_VALUES.get(id(net.bench))  # type: ignore[attr-defined]
+    branch = net.bench.branch(branch_id)
+    cached = _SECTION_VALUES.get(id(net.bench))
     if cached is None or cached[0] is not net.bench:
         if len(_SECTION_VALUES) > 32:
             _SECTION_VALUES.clear()
-        cached = _SECTION_VALUES[id(net.bench)] = (net.bench, bench_section_values(net.bench))  # type: ignore[attr-defined]
-    paths = position_paths(branch, net.state.line_position(branch_id), cached[1])  # type: ignore[attr-defined]
-    return branch_two_port(paths, 2 * np.pi * net.frequency_hz).abcd[..., 0, 0]  # type: ignore[attr-defined]
+        cached = _SECTION_VALUES[id(net.bench)] = (net.bench, bench_section_values(net.bench))
+    paths = position_paths(branch, net.state.line_position(branch_id), cached[1])
+    return branch_two_port(paths, 2 * np.pi * net.frequency_hz).abcd[..., 0, 0]
 
 
 def _switch_currents(sol: Solution, end_currents: dict[tuple[str, str], NDArray], *,

@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 
 from labkit.core.bench import Bench
-from labkit.core.network import assemble, compile_network, element_admittances
+from labkit.core.network import assemble, compile_network
 from labkit.core.predict import predict_state
 from labkit.core.solve import LinearSystem, solve_network
 from labkit.core.state import BenchState, states_after_steps
@@ -112,7 +112,7 @@ def test_benchmark_prediction_engine() -> None:
     emf = np.zeros((len(nets), batch.src_node.shape[1]), dtype=complex)
     emf[:, 0] = 120.0
     t_batch = _best(lambda: solve_batch(batch, emf, 60.0), repeat=3)
-    y_el = element_admittances(batch.kind, batch.r, batch.l, batch.c, batch.y_fixed, 2 * np.pi * 60)
+    y_el = batch.admittances(2 * np.pi * 60)
     ymat = assemble(batch.n_nodes, batch.a, batch.b, y_el)
     rhs = np.ones((len(nets), batch.n_nodes, 1), dtype=complex)
     t_bare = _best(lambda: np.linalg.solve(ymat, rhs), repeat=3)
