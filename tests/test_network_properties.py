@@ -240,14 +240,14 @@ def test_full_scale_branch_obeys_its_abcd_two_port(demo: Bench, position: str) -
 
 def test_band_percentiles_equal_numpy_percentile() -> None:
     # numpy.percentile (linear interpolation) is the outside reference for the fast partition path
-    from labkit.core.predict import BAND_PERCENTILES, _percentiles
+    from labkit.core.bands import BAND_PERCENTILES, row_percentiles
 
     rng = np.random.default_rng(5)
     values = rng.normal(size=(1001, 7))
     values[3, 2] = np.nan
     values[9, 4] = np.inf  # a non-finite sample is ignored like NaN
     expected = np.nanpercentile(np.where(np.isfinite(values), values, np.nan), BAND_PERCENTILES, axis=0)
-    np.testing.assert_allclose(_percentiles(values.T.copy()), expected, rtol=1e-12)
+    np.testing.assert_allclose(row_percentiles(values.T.copy()), expected, rtol=1e-12)
 
 
 @pytest.mark.parametrize("seed", range(6))

@@ -9,17 +9,17 @@ switch changes pass through.
 
 from __future__ import annotations
 
-import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
 from numpy.typing import NDArray
 
+from labkit.core.bands import StreamingPercentiles, row_percentiles
 from labkit.core.bench import Bench
 from labkit.core.defaults import BAND_PERCENTILES, DEFAULT_SAMPLES, DEFAULT_SEED
 from labkit.core.errors import LabkitError
 from labkit.core.network import Network, NetworkError, compile_network
-from labkit.core.results import RowLabel, quantity_arrays, quantity_rows
+from labkit.core.results import RowLabel, collect_quantity_rows, quantity_arrays
 from labkit.core.solve import Solution, sample_factors, solve_network, thevenin_impedance
 from labkit.core.state import BenchState, apply_step, initial_state, intermediate_states
 from labkit.core.template import SessionTemplate
@@ -97,10 +97,9 @@ def predict_state(bench: Bench, state: BenchState, *, n_samples: int = DEFAULT_S
     labels, nominal = quantity_arrays(sol)
     low, high = nominal[0].copy(), nominal[0].copy()
     if n_samples > 0 and net.parameters:
-        labels_mc, values = _sampled_rows(net, sample_factors(net, n_samples, seed), harmonics, band_locations)
+        labels_mc, pct = _sampled_band(net, sample_factors(net, n_samples, seed), harmonics, band_locations)
         index = {(lab.location, lab.quantity): k for k, lab in enumerate(labels)}
         rows = np.array([index[(lab.location, lab.quantity)] for lab in labels_mc], dtype=np.intp)
-        pct = _percentiles(values)
         if band_locations is not None:
             low, high = np.full_like(low, np.nan), np.full_like(high, np.nan)
         nom = nominal[0, rows]
@@ -124,6 +123,43 @@ machine); a small network takes bigger blocks, saving per-block overhead."""
 BAND_BLOCK_MAX_SAMPLES = 4000  # beyond this the per-sample arrays of the harmonic orders outgrow the caches
 
 
+def _block_samples(net: Network) -> int:
+    return min(max(BAND_BLOCK // max(len(net.elements), 1), 64), BAND_BLOCK_MAX_SAMPLES)
+
+
+def _sampled_band(net: Network, factors: NDArray[np.float64], harmonics: bool,
+                  locations: set[str] | None) -> tuple[list[RowLabel], NDArray[np.float64]]:
+    """Labels and band percentiles (2, rows) of every predicted quantity over the tolerance samples.
+
+    Blocks of samples are solved one after another into one reused buffer (fresh memory is
+    slow to touch); the first sets the selection's thresholds, and each block's rows are
+    selected down to the samples near each band edge. When the selection cannot decide a
+    row (a rare sample beyond a threshold, or rows that differ between blocks), every
+    sample is solved again and kept (:func:`_sampled_rows`).
+    """
+    n = factors.shape[0]
+    step = _block_samples(net)
+    starts = list(range(0, n, step))
+    first = collect_quantity_rows(solve_network(net, factors[: min(step, n)], harmonics=harmonics), locations)
+    labels, layout = first.labels, first.layout
+    selector = StreamingPercentiles(first.n_rows, n, BAND_PERCENTILES)
+    buffer = first.matrix()
+    selector.start(buffer)
+    alike = True
+    for start in starts[1:]:
+        rows = collect_quantity_rows(solve_network(net, factors[start : start + step], harmonics=harmonics),
+                                     locations)
+        if rows.layout != layout:
+            alike = False
+            break
+        selector.add(rows.write(buffer[:, : rows.n]), start)
+    pct = selector.result() if alike else None
+    if pct is None:
+        labels, values = _sampled_rows(net, factors, harmonics, locations)
+        pct = row_percentiles(values, BAND_PERCENTILES)
+    return labels, pct
+
+
 def _sampled_rows(net: Network, factors: NDArray[np.float64], harmonics: bool,
                   locations: set[str] | None) -> tuple[list[RowLabel], NDArray[np.float64]]:
     """Every predicted quantity of every tolerance sample, by row (rows, S), solved in blocks (``BAND_BLOCK``).
@@ -134,47 +170,23 @@ def _sampled_rows(net: Network, factors: NDArray[np.float64], harmonics: bool,
     labels: list[RowLabel] = []
     out = np.empty((0, 0))
     index: dict[tuple[str, str], int] = {}
-    step = min(max(BAND_BLOCK // max(len(net.elements), 1), 64), BAND_BLOCK_MAX_SAMPLES)
+    step = _block_samples(net)
     for start in range(0, n, step):
         block = slice(start, min(start + step, n))
-        block_labels, values = quantity_rows(solve_network(net, factors[block], harmonics=harmonics), locations)
+        rows = collect_quantity_rows(solve_network(net, factors[block], harmonics=harmonics), locations)
         if start == 0:
-            labels, out = block_labels, np.empty((len(values), n))
+            labels, layout, out = rows.labels, rows.layout, np.empty((rows.n_rows, n))
             index = {(lab.location, lab.quantity): k for k, lab in enumerate(labels)}
-        if block_labels == labels:
-            for k, row in enumerate(values):
-                out[k, block] = row
+        if rows.layout == layout:
+            rows.write(out[:, block])
             continue
         # a row that depends on the values (e.g. v_across when no slip): align by name, NaN where absent
+        values = rows.matrix()
         out[:, block] = np.nan
-        for k, lab in enumerate(block_labels):
+        for k, lab in enumerate(rows.labels):
             if (lab.location, lab.quantity) in index:
                 out[index[(lab.location, lab.quantity)], block] = values[k]
     return labels, out
-
-
-def _percentiles(by_row: NDArray[np.float64]) -> NDArray[np.float64]:
-    """The band percentiles of each row of ``by_row`` (rows, S) (linear interpolation, as numpy's default).
-
-    Non-finite samples are ignored. The array is reordered in place: one partition per row
-    finds the order statistics; rows holding NaN or inf take the slower NaN-aware path.
-    """
-    n = by_row.shape[1]
-    bad_rows = ~np.isfinite(by_row).all(axis=1)
-    out = np.empty((len(BAND_PERCENTILES), by_row.shape[0]))
-    pos = np.array(BAND_PERCENTILES) / 100.0 * (n - 1)
-    lo, hi = np.floor(pos).astype(int), np.ceil(pos).astype(int)
-    kth = np.unique(np.concatenate([lo, hi]))
-    frac = pos - lo
-    rest = by_row[bad_rows]  # a copy, taken before the partition reorders the rows
-    by_row.partition(kth, axis=1)
-    out[:] = (by_row[:, lo] * (1 - frac) + by_row[:, hi] * frac).T
-    if rest.size:
-        rest[~np.isfinite(rest)] = np.nan
-        with warnings.catch_warnings():  # rows that are NaN in every sample (a pf of no current) stay NaN
-            warnings.simplefilter("ignore", RuntimeWarning)
-            out[:, bad_rows] = np.nanpercentile(rest, BAND_PERCENTILES, axis=1)
-    return out
 
 
 def _rating_flags(pred: Prediction, context: str) -> list[str]:

@@ -190,9 +190,10 @@ def _check_conditioning(net: Network, ymat: NDArray, y_el: NDArray) -> None:
 
 
 def _currents(arr_a: NDArray, arr_b: NDArray, v: NDArray, y_el: NDArray) -> NDArray:
-    va = np.where(arr_a >= 0, v[..., np.maximum(arr_a, 0)], 0)
-    vb = np.where(arr_b >= 0, v[..., np.maximum(arr_b, 0)], 0)
-    return (va - vb) * y_el
+    """Element currents (S, E) from node voltages (S, N); node index -1 is the neutral (0 V)."""
+    v_ext = np.zeros((*v.shape[:-1], v.shape[-1] + 1), dtype=complex)
+    v_ext[..., :-1] = v  # the last column stands for the neutral, so index -1 reads 0 V
+    return (v_ext[..., arr_a] - v_ext[..., arr_b]) * y_el
 
 
 def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, harmonics: bool = True,
