@@ -161,3 +161,17 @@ def test_a_reversed_sensor_fault_flips_the_power(demo):
     cap = simulated_capture(pred, demo, spec, seed=2, faults={"i@L12@B1": ChannelFault(gain=-1.0)})
     p = analyse_for(cap).pair("L12@B1").p
     assert p == pytest.approx(-pred.value("L12@B1", "p"), rel=1e-2)
+
+
+@pytest.mark.parametrize("max_order", [3, 13, 25, 49])
+def test_predicted_crest_factors_match_a_dense_numpy_synthesis(max_order):
+    # the predictions' crest factor (coarse samples refined by Newton steps) against 100 000 points per period
+    from labkit.core.results import _crest
+
+    rng = np.random.default_rng(max_order)
+    orders = [1, *range(3, max_order + 1, 2)]
+    amplitude = np.array([1.0, *(rng.uniform(0.0, 0.6, len(orders) - 1) / np.arange(1, len(orders)))])
+    spectra = amplitude[None, :] * np.exp(2j * np.pi * rng.random((40, len(orders))))
+    got = _crest(spectra.T[None], orders)[0]
+    expected = [_numpy_crest(orders, spectrum)[0] for spectrum in spectra]
+    np.testing.assert_allclose(got, expected, rtol=1e-6)

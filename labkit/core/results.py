@@ -8,6 +8,7 @@ Rows are computed place-major: each quantity of many places at once, as one
 
 from __future__ import annotations
 
+import math
 from collections.abc import Callable
 from dataclasses import dataclass
 
@@ -150,33 +151,67 @@ def _half_turn_positive(angle_deg: NDArray) -> NDArray:
     return np.where(angle_deg == -180.0, 180.0, angle_deg)
 
 
-CREST_POINTS = 256  # points per fundamental period: enough for harmonics up to the 63rd
-
-
+CREST_POINTS_PER_PERIOD = 8  # coarse samples per period of the highest order, before the peak is refined
 CREST_CHUNK = 4096  # waveforms sampled at a time: (chunk, points) stays a few MB
 
 
 def _crest(x: NDArray, orders: list[int]) -> NDArray:
     """Crest factor of periodic signals from their RMS harmonic phasors (M, H, S) of ``orders``, over one period.
 
-    The peak is sampled at ``CREST_POINTS`` points; the RMS is sqrt(sum |X_h|^2) (Parseval).
+    The waveform sqrt(2) Re(sum_h X_h e^(j h theta)) is sampled coarsely (``CREST_POINTS_PER_PERIOD``
+    points per period of the highest order, at least 64); the largest sample is refined by two
+    Newton steps on the waveform's derivative, kept only where they raise it (any value the
+    waveform takes is at most its peak). The RMS is sqrt(sum |X_h|^2) (Parseval).
     """
     m, h, s = x.shape
-    t = np.linspace(0.0, 1.0, CREST_POINTS, endpoint=False)
-    arg = 2 * np.pi * np.asarray(orders)[:, None] * t[None, :]
-    # sqrt(2) Re(sum_h X_h e^(j 2 pi h t)) = [Re X, Im X] @ sqrt(2) [cos; -sin]: one real matrix product
-    basis = np.sqrt(2) * np.concatenate([np.cos(arg), -np.sin(arg)])
+    h_arr = np.asarray(orders, dtype=float)
+    points = max(64, 16 * math.ceil(CREST_POINTS_PER_PERIOD * max(orders) / 16))
+    theta = 2 * np.pi * np.arange(points) / points
+    # [Re X, Im X] @ sqrt(2) [cos; -sin]: all samples of a chunk of waveforms in one real matrix product
+    basis = np.sqrt(2) * np.concatenate([np.cos(h_arr[:, None] * theta), -np.sin(h_arr[:, None] * theta)])
     parts = np.empty((m, s, 2 * h))
     parts[..., :h] = np.swapaxes(x.real, 1, 2)
     parts[..., h:] = np.swapaxes(x.imag, 1, 2)
     flat = parts.reshape(m * s, 2 * h)
     peak = np.empty(m * s)
+    at = np.empty(m * s)
     for start in range(0, m * s, CREST_CHUNK):
-        wave = flat[start : start + CREST_CHUNK] @ basis
-        peak[start : start + CREST_CHUNK] = np.max(np.abs(wave), axis=1)
+        wave = np.abs(flat[start : start + CREST_CHUNK] @ basis)
+        k = np.argmax(wave, axis=1)
+        peak[start : start + CREST_CHUNK] = wave[np.arange(k.size), k]
+        at[start : start + CREST_CHUNK] = theta[k]
+    phasors = np.swapaxes(x, 0, 1).reshape(h, m * s)  # (H, waveforms): each order's phasors contiguous
+    for newton in range(3):  # two Newton steps on w'(theta) = 0 near the largest sample, then the value there
+        terms = phasors * _powers(np.exp(1j * at), orders)  # X_h e^(j h theta)
+        value = np.sqrt(2) * np.abs(terms.sum(axis=0).real)
+        peak = np.maximum(peak, value)
+        if newton == 2:
+            break
+        d1 = -(h_arr @ terms).imag  # w' / sqrt(2)
+        d2 = -(h_arr**2 @ terms).real  # w'' / sqrt(2)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            step = np.where(d2 != 0, -d1 / d2, 0.0)
+        at = at + np.clip(np.nan_to_num(step), -np.pi / points, np.pi / points)
     rms = np.sqrt(np.sum(flat**2, axis=1))
     with np.errstate(invalid="ignore", divide="ignore"):
         return (peak / rms).reshape(m, s)
+
+
+def _powers(z: NDArray[np.complex128], orders: list[int]) -> NDArray[np.complex128]:
+    """z**h for each of the increasing ``orders`` (H, len(z)), by multiplication rather than exp/log."""
+    out = np.empty((len(orders), z.size), dtype=complex)
+    steps: dict[int, NDArray[np.complex128]] = {}
+    previous = 0
+    for k, order in enumerate(orders):
+        gap = order - previous
+        if gap not in steps:
+            steps[gap] = z**gap
+        if k == 0:
+            out[0] = steps[gap]
+        else:
+            np.multiply(out[k - 1], steps[gap], out=out[k])
+        previous = order
+    return out
 
 
 def quantity_arrays(sol: Solution, locations: set[str] | None = None) -> tuple[list[RowLabel], NDArray[np.float64]]:
