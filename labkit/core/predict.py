@@ -97,7 +97,7 @@ def predict_state(bench: Bench, state: BenchState, *, n_samples: int = DEFAULT_S
     labels, nominal = quantity_arrays(sol)
     low, high = nominal[0].copy(), nominal[0].copy()
     if n_samples > 0 and net.parameters:
-        labels_mc, pct = _sampled_band(net, sample_factors(net, n_samples, seed), harmonics, band_locations)
+        labels_mc, pct = _sampled_band(net, sample_factors(net, n_samples, seed), harmonics, band_locations, sol)
         index = {(lab.location, lab.quantity): k for k, lab in enumerate(labels)}
         rows = np.array([index[(lab.location, lab.quantity)] for lab in labels_mc], dtype=np.intp)
         if band_locations is not None:
@@ -127,41 +127,44 @@ def _block_samples(net: Network) -> int:
     return min(max(BAND_BLOCK // max(len(net.elements), 1), 64), BAND_BLOCK_MAX_SAMPLES)
 
 
-def _sampled_band(net: Network, factors: NDArray[np.float64], harmonics: bool,
-                  locations: set[str] | None) -> tuple[list[RowLabel], NDArray[np.float64]]:
+def _sampled_band(net: Network, factors: NDArray[np.float64], harmonics: bool, locations: set[str] | None,
+                  nominal: Solution | None = None) -> tuple[list[RowLabel], NDArray[np.float64]]:
     """Labels and band percentiles (2, rows) of every predicted quantity over the tolerance samples.
 
     Blocks of samples are solved one after another into one reused buffer (fresh memory is
     slow to touch); the first sets the selection's thresholds, and each block's rows are
     selected down to the samples near each band edge. When the selection cannot decide a
     row (a rare sample beyond a threshold, or rows that differ between blocks), every
-    sample is solved again and kept (:func:`_sampled_rows`).
+    sample is solved again and kept (:func:`_sampled_rows`). Every block's iterations start
+    from the ``nominal`` solution's operating point.
     """
     n = factors.shape[0]
     step = _block_samples(net)
     starts = list(range(0, n, step))
-    first = collect_quantity_rows(solve_network(net, factors[: min(step, n)], harmonics=harmonics), locations)
+    def solve(block: slice) -> Solution:
+        return solve_network(net, factors[block], harmonics=harmonics, warm_start=nominal)
+
+    first = collect_quantity_rows(solve(slice(0, min(step, n))), locations)
     labels, layout = first.labels, first.layout
     selector = StreamingPercentiles(first.n_rows, n, BAND_PERCENTILES)
     buffer = first.matrix()
     selector.start(buffer)
     alike = True
     for start in starts[1:]:
-        rows = collect_quantity_rows(solve_network(net, factors[start : start + step], harmonics=harmonics),
-                                     locations)
+        rows = collect_quantity_rows(solve(slice(start, start + step)), locations)
         if rows.layout != layout:
             alike = False
             break
         selector.add(rows.write(buffer[:, : rows.n]), start)
     pct = selector.result() if alike else None
     if pct is None:
-        labels, values = _sampled_rows(net, factors, harmonics, locations)
+        labels, values = _sampled_rows(net, factors, harmonics, locations, nominal)
         pct = row_percentiles(values, BAND_PERCENTILES)
     return labels, pct
 
 
-def _sampled_rows(net: Network, factors: NDArray[np.float64], harmonics: bool,
-                  locations: set[str] | None) -> tuple[list[RowLabel], NDArray[np.float64]]:
+def _sampled_rows(net: Network, factors: NDArray[np.float64], harmonics: bool, locations: set[str] | None,
+                  nominal: Solution | None = None) -> tuple[list[RowLabel], NDArray[np.float64]]:
     """Every predicted quantity of every tolerance sample, by row (rows, S), solved in blocks (``BAND_BLOCK``).
 
     Row-major, so that each row's samples are contiguous for the percentile selection.
@@ -173,7 +176,8 @@ def _sampled_rows(net: Network, factors: NDArray[np.float64], harmonics: bool,
     step = _block_samples(net)
     for start in range(0, n, step):
         block = slice(start, min(start + step, n))
-        rows = collect_quantity_rows(solve_network(net, factors[block], harmonics=harmonics), locations)
+        rows = collect_quantity_rows(solve_network(net, factors[block], harmonics=harmonics, warm_start=nominal),
+                                     locations)
         if start == 0:
             labels, layout, out = rows.labels, rows.layout, np.empty((rows.n_rows, n))
             index = {(lab.location, lab.quantity): k for k, lab in enumerate(labels)}

@@ -197,7 +197,8 @@ def _currents(arr_a: NDArray, arr_b: NDArray, v: NDArray, y_el: NDArray) -> NDAr
 
 
 def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, harmonics: bool = True,
-                  given_angles_deg: dict[str, float] | None = None) -> Solution:
+                  given_angles_deg: dict[str, float] | None = None, warm_start: Solution | None = None
+                  ) -> Solution:
     """Solve a compiled network for stacked parameter samples.
 
     Parameters
@@ -212,6 +213,10 @@ def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, h
     given_angles_deg
         Given-phasor mode: every source keeps its EMF magnitude and takes this angle
         (degrees); no role is solved.
+    warm_start
+        A converged solution of the same network (its nominal one, say): the iterations
+        (source roles, nonlinear loads' equivalent admittances) start from its operating
+        point instead of the setpoints. The answer is the same to the iterations' tolerance.
     """
     factors = None if factors is None else np.asarray(factors, dtype=float)
     arr = net.element_arrays()
@@ -304,6 +309,18 @@ def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, h
     x = np.zeros((s, n_x))
     for m, isl_id in enumerate(free_islands):
         x[:, m] = f_node[:, sorted(islands[isl_id])[0]]
+    if warm_start is not None:  # start from a converged operating point of the same network
+        for m, isl_id in enumerate(free_islands):
+            x[:, m] = warm_start.island_frequency_hz[0, sorted(islands[isl_id])[0]]
+        for m, k in enumerate(angle_unknowns):
+            x[:, len(free_islands) + m] = np.degrees(np.angle(warm_start.emf[0, k]))
+        if nl_elems:
+            assert y_nl is not None
+            assert y_fixed is not None
+            for j, e in nl_elems:
+                ld = net.bench.load(e.owner)
+                ratio = ld.rated_voltage**2 / max(abs(warm_start.v[0, 0, e.node_a]) ** 2, 1e-12)
+                y_nl[:, j] = y_fixed[:, j] * (ratio - 1.0)
     converged, n_iter = True, 0
     for _outer in range(40 if nl_elems else 1):
         if n_x:
@@ -370,6 +387,14 @@ def _node_islands(net: Network) -> list[set[int]]:
     return _islands(net)
 
 
+def _harmonic_network(net: Network, f0: float, order: int) -> Network:
+    """The network at one harmonic order, compiled once per fundamental network and frequency."""
+    compiled = net.__dict__.setdefault("_harmonic_networks", {})
+    if (f0, order) not in compiled:
+        compiled[(f0, order)] = compile_network(net.bench, net.state, frequency_hz=f0, harmonic=order)
+    return compiled[(f0, order)]
+
+
 def _solve_harmonics(net: Network, v1: NDArray, i1: NDArray, f_node: NDArray,
                      factors: NDArray | None) -> tuple[list[int], list, list, list]:
     """Harmonic voltages and currents from the nonlinear loads' current injections."""
@@ -378,7 +403,7 @@ def _solve_harmonics(net: Network, v1: NDArray, i1: NDArray, f_node: NDArray,
     out_v, out_i, out_src = [], [], []
     f0 = float(np.mean(f_node))
     for h in orders:
-        net_h = compile_network(net.bench, net.state, frequency_hz=f0, harmonic=h)
+        net_h = _harmonic_network(net, f0, h)
         arr = net_h.element_arrays()
         s = v1.shape[0]
         y_el = net_h.element_model().admittances(factors, 2 * np.pi * f0 * h)
