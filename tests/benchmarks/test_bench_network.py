@@ -4,7 +4,8 @@ Targets (issue: prediction engine): array-level solve of one configuration <= 50
 throughput >= 30 % of the bare stacked solve and >= 200,000 configurations/s on one core; a
 10,000-sample band <= 50 ms; tidy output <= 1 ms. Peers measured in the same run: the bare
 stacked ``np.linalg.solve`` on the same matrices, pandapower's ``runpp`` on the same network,
-ngspice on the same netlist.
+ngspice on the same netlist; for the band selection alone, numpy.percentile and numpy.partition
+of the same samples.
 """
 
 from __future__ import annotations
@@ -131,6 +132,7 @@ def test_benchmark_prediction_engine() -> None:
     step_locations = {"B3", "B6", "L12@B1", "L34@B3", "R3@B3", "X6@B6"}
     figures["band_10k_step_ms"] = _best(lambda: predict_state(bench, state, n_samples=10_000,
                                                               band_locations=step_locations), repeat=7) * 1e3
+    figures.update(_selection_peers(net))
     figures["bare_10k_stacked_solve_ms"] = _best(lambda: np.linalg.solve(
         np.broadcast_to(ymat[:1], (10_000, *ymat.shape[1:])).copy(), np.ones((10_000, ymat.shape[1], 1))),
         repeat=3) * 1e3
@@ -155,6 +157,29 @@ def test_benchmark_demo_bench() -> None:
     figures["band_10k_harmonic_step_ms"] = _best(lambda: predict_state(bench, harmonic, n_samples=10_000),
                                                  repeat=3) * 1e3
     _report("demo_bench", figures)
+
+
+def _selection_peers(net) -> dict[str, float]:
+    """The band selection alone, on every row's 10,000 samples, against numpy's own selections."""
+    from labkit.core.bands import StreamingPercentiles, row_percentiles
+    from labkit.core.predict import _block_samples, _sampled_rows
+    from labkit.core.solve import sample_factors
+
+    _, values = _sampled_rows(net, sample_factors(net, 10_000, 1), True, None)
+    step = _block_samples(net)
+    blocks = [np.ascontiguousarray(values[:, k : k + step]) for k in range(0, values.shape[1], step)]
+
+    def streamed() -> None:
+        selector = StreamingPercentiles(values.shape[0], values.shape[1])
+        selector.start(blocks[0])
+        for k, block in enumerate(blocks[1:], start=1):
+            selector.add(block, k * step)
+        assert selector.result() is not None
+
+    return {"band_rows": values.shape[0],
+            "band_selection_streamed_ms": _best(streamed, repeat=7) * 1e3,
+            "numpy_partition_rows_ms": _best(lambda: row_percentiles(values.copy()), repeat=7) * 1e3,
+            "numpy_percentile_ms": _best(lambda: np.percentile(values, [5.0, 95.0], axis=1), repeat=3) * 1e3}
 
 
 def _pandapower_peer(bench: Bench, state: BenchState) -> dict[str, float]:
