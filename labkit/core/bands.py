@@ -133,7 +133,7 @@ class StreamingPercentiles:
             self._whole_values[:, offset : offset + b] = block[whole]
         tails: list[tuple[NDArray[np.intp], NDArray[np.float64]]] = []
         if not whole.all():
-            if offset and not np.isfinite(block).all() and not whole[~np.isfinite(block).all(axis=1)].all():
+            if offset and not np.isfinite(block.sum(axis=1)[~whole]).all():  # NaN or inf: its row sum is not finite
                 self._failed = True  # a row kept by candidates met NaN or inf: its ranks would shift
                 self._blocks.append((b, tails))
                 return
@@ -179,20 +179,22 @@ class StreamingPercentiles:
         return out
 
     def _gather(self, tail: int, rows: NDArray[np.bool_]) -> tuple[NDArray[np.float64], NDArray[np.intp]]:
-        """Every block's candidates of one tail for ``rows``, a row each, padded with +inf; and their counts."""
-        counts = np.array([tails[tail][0] for _, tails in self._blocks])  # (blocks, all rows)
+        """Every block's candidates of one tail for ``rows`` (the only rows with candidates), a row each,
+        padded with +inf; and their counts."""
+        counts = np.array([tails[tail][0][rows] for _, tails in self._blocks])  # (blocks, rows)
         filled = counts.sum(axis=0)
-        width = max(int(filled[rows].max()), 1)
-        store = np.full((self.n_rows, width), np.inf)
+        n_rows = int(rows.sum())
+        width = max(int(filled.max()), 1)
+        store = np.full((n_rows, width), np.inf)
         before = np.cumsum(counts, axis=0) - counts  # a block's first column in each row
         flat = store.ravel()
         for k, (_, tails) in enumerate(self._blocks):
-            c, values = tails[tail]
+            c, values = counts[k], tails[tail][1]
             if values.size:
                 # destination = row * width + before + (rank within this block's run of the row)
-                shift = np.arange(self.n_rows) * width + before[k] - (np.cumsum(c) - c)
+                shift = np.arange(n_rows) * width + before[k] - (np.cumsum(c) - c)
                 flat[np.repeat(shift, c) + np.arange(values.size)] = values
-        return store[rows], filled[rows]
+        return store, filled
 
     def _check(self, block: NDArray[np.float64]) -> None:
         if block.ndim != 2 or block.shape[0] != self.n_rows:
@@ -207,9 +209,11 @@ class StreamingPercentiles:
 
 def _whole_row_percentiles(values: NDArray[np.float64], percentiles: tuple[float, ...]) -> NDArray[np.float64]:
     """:func:`row_percentiles`, with constant rows (common among rows kept whole) answered directly."""
-    out = np.empty((len(percentiles), values.shape[0]))
-    constant = np.isfinite(values[:, 0]) & (values == values[:, :1]).all(axis=1)  # non-finite ones are ignored
-    out[:, constant] = values[constant, 0]
-    if not constant.all():
-        out[:, ~constant] = row_percentiles(values[~constant], percentiles)
+    out = np.full((len(percentiles), values.shape[0]), np.nan)  # rows with no finite sample stay NaN
+    first = values[:, 0]
+    constant = np.isfinite(first) & (values == first[:, None]).all(axis=1)
+    out[:, constant] = first[constant]
+    rest = ~constant & ~(np.isinf(first) & (values == first[:, None]).all(axis=1))  # an inf throughout
+    if rest.any():
+        out[:, rest] = row_percentiles(values[rest], percentiles)
     return out
