@@ -72,6 +72,9 @@ def build_parser() -> argparse.ArgumentParser:
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``labkit`` console script."""
+    from labkit.lab.allocator import keep_freed_blocks
+
+    keep_freed_blocks()  # tolerance bands reuse freed memory (see labkit.lab.allocator)
     args = build_parser().parse_args(argv)
     try:
         return int(args.func(args))

@@ -190,10 +190,26 @@ def _check_conditioning(net: Network, ymat: NDArray, y_el: NDArray) -> None:
 
 
 def _currents(arr_a: NDArray, arr_b: NDArray, v: NDArray, y_el: NDArray) -> NDArray:
-    """Element currents (S, E) from node voltages (S, N); node index -1 is the neutral (0 V)."""
-    v_ext = np.zeros((*v.shape[:-1], v.shape[-1] + 1), dtype=complex)
-    v_ext[..., :-1] = v  # the last column stands for the neutral, so index -1 reads 0 V
-    return (v_ext[..., arr_a] - v_ext[..., arr_b]) * y_el
+    """Element currents (S, E) from node voltages (S, N); node index -1 is the neutral (0 V).
+
+    The voltage across each element is one matrix product with the element-node incidence
+    matrix (entries +1, -1, 0: exact for finite voltages, and far faster than gathering columns);
+    members with a non-finite voltage (a singular member is NaN) are gathered instead, so a NaN
+    stays where it belongs.
+    """
+    n_nodes = v.shape[1]
+    incidence = np.zeros((n_nodes, arr_a.size))
+    elements = np.arange(arr_a.size)
+    incidence[arr_a[arr_a >= 0], elements[arr_a >= 0]] = 1.0
+    incidence[arr_b[arr_b >= 0], elements[arr_b >= 0]] -= 1.0
+    across = v @ incidence
+    bad = ~np.isfinite(v).all(axis=1)
+    if bad.any():
+        v_ext = np.zeros((int(bad.sum()), n_nodes + 1), dtype=complex)
+        v_ext[:, :-1] = v[bad]  # the last column stands for the neutral, so index -1 reads 0 V
+        across[bad] = v_ext[:, arr_a] - v_ext[:, arr_b]
+    across *= y_el  # in place: a fresh array of this size costs its page faults again on every block
+    return across
 
 
 def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, harmonics: bool = True,

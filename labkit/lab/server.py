@@ -19,6 +19,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from urllib.parse import quote
 
+from labkit.lab import allocator
 from labkit.lab.limits import (
     ENV_SERVER_LIMIT,
     ENV_UPLOAD_LIMIT,
@@ -131,6 +132,7 @@ def build_launch(folder: Path, notebook: Path, *, mode: str = "lab", port: int |
     root_flag = (os.geteuid() == 0) if allow_root is None and hasattr(os, "geteuid") else bool(allow_root)
     tornado = json.dumps({"websocket_max_message_size": int(message_limit)})
     env = {ENV_SERVER_LIMIT: str(int(message_limit)), ENV_UPLOAD_LIMIT: str(int(upload_limit))}
+    env |= allocator.child_environment()  # kernels keep freed sample blocks (labkit.lab.allocator)
     rel = notebook.resolve().relative_to(folder.resolve()).as_posix()
     base = f"http://{_url_host(host)}:{port}"
     if mode == "lab":

@@ -10,8 +10,11 @@ of the same samples.
 
 from __future__ import annotations
 
+import json
+import os
 import shutil
 import subprocess
+import sys
 import time
 from pathlib import Path
 
@@ -137,6 +140,7 @@ def test_benchmark_prediction_engine() -> None:
         np.broadcast_to(ymat[:1], (10_000, *ymat.shape[1:])).copy(), np.ones((10_000, ymat.shape[1], 1))),
         repeat=3) * 1e3
 
+    figures.update(_front_end_allocator_bands())
     # peers on the same network
     figures.update(_pandapower_peer(bench, state))
     figures.update(_ngspice_peer(net))
@@ -157,6 +161,41 @@ def test_benchmark_demo_bench() -> None:
     figures["band_10k_harmonic_step_ms"] = _best(lambda: predict_state(bench, harmonic, n_samples=10_000),
                                                  repeat=3) * 1e3
     _report("demo_bench", figures)
+
+
+FRONT_END_BANDS = """
+import json, sys, time
+sys.path.insert(0, sys.argv[1])
+from labkit.lab.allocator import keep_freed_blocks
+from test_bench_network import ROOT, benchmark_bench
+from labkit.core.predict import predict_state
+from labkit.core.state import states_after_steps
+from labkit.files.loader import load_bench, load_template
+applied = keep_freed_blocks()
+bench, state = benchmark_bench()
+demo = load_bench(ROOT / "demo-bench.toml").bench
+lab2 = states_after_steps(demo, load_template(ROOT / "lab2-synchronize.toml", demo).template)[-1]
+lab3 = states_after_steps(demo, load_template(ROOT / "lab3-harmonics.toml", demo).template)[-1]
+out = {"front_end_allocator_applied": int(applied)}
+for name, (b, s) in {"network": (bench, state), "demo_lab2": (demo, lab2), "demo_lab3_harmonic": (demo, lab3)}.items():
+    predict_state(b, s, n_samples=10_000)
+    times = []
+    for _ in range(5):
+        t0 = time.perf_counter()
+        predict_state(b, s, n_samples=10_000)
+        times.append(time.perf_counter() - t0)
+    out[f"band_10k_{name}_front_end_allocator_ms"] = min(times) * 1e3
+print(json.dumps(out))
+"""
+
+
+def _front_end_allocator_bands() -> dict[str, float]:
+    """The same 10,000-sample bands in a process set up as labkit's front ends set theirs (labkit.lab.allocator)."""
+    env = {k: v for k, v in os.environ.items() if not k.startswith("MALLOC_")}
+    env.pop("LABKIT_SYSTEM_MALLOC", None)
+    out = subprocess.run([sys.executable, "-c", FRONT_END_BANDS, str(Path(__file__).parent)], capture_output=True,
+                         text=True, check=True, env=env)
+    return json.loads(out.stdout.strip().splitlines()[-1])
 
 
 def _selection_peers(net) -> dict[str, float]:
