@@ -136,3 +136,25 @@ def test_tolerance_bands_do_not_depend_on_the_sample_blocks(demo_bench: Bench, t
     assert [lab.location for lab in whole.labels] == [lab.location for lab in blocked.labels]
     np.testing.assert_allclose(blocked.band_low, whole.band_low, rtol=1e-9, atol=1e-12)
     np.testing.assert_allclose(blocked.band_high, whole.band_high, rtol=1e-9, atol=1e-12)
+
+
+@pytest.mark.parametrize("n", [1, 2])
+def test_small_systems_in_closed_form_equal_lapack(n: int) -> None:
+    # the closed-form 1 x 1 and 2 x 2 solves against numpy.linalg.solve (LAPACK gesv), singular members included
+    from labkit.core.solve import stacked_solve
+
+    rng = np.random.default_rng(n)
+    y = rng.normal(size=(50, n, n)) + 1j * rng.normal(size=(50, n, n))
+    y[7] = 0.0  # singular
+    if n == 2:
+        y[9, 1] = 2.0 * y[9, 0]  # rank one: singular
+    i = rng.normal(size=(50, n)) + 1j * rng.normal(size=(50, n))
+    v, failed = stacked_solve(y, i)
+    singular = {7} | ({9} if n == 2 else set())
+    assert set(np.flatnonzero(failed)) <= singular
+    assert 7 in set(np.flatnonzero(failed))
+    for k in range(50):
+        if k in singular:
+            assert failed[k] or not np.isfinite(v[k]).all() or np.allclose(y[k] @ v[k], i[k])
+            continue
+        np.testing.assert_allclose(v[k], np.linalg.solve(y[k], i[k]), rtol=1e-10)

@@ -190,11 +190,12 @@ def reduced_solve(plan: EliminationPlan, y: NDArray[np.complex128],
     v = np.empty((s, plan.n_nodes), dtype=complex)
     v_kept, failed = stacked_solve(flat.reshape(s, n, n), inj[:, plan.kept])
     v[:, plan.kept] = v_kept
-    for step, (t_p, t_q) in zip(reversed(plan.steps), reversed(weights), strict=True):
-        vi = t_p * v[:, step.p]
-        if step.q != NEUTRAL:
-            vi += t_q * v[:, step.q]
-        v[:, step.node] = vi
+    with np.errstate(invalid="ignore", over="ignore"):  # weak members' values are garbage, solved again below
+        for step, (t_p, t_q) in zip(reversed(plan.steps), reversed(weights), strict=True):
+            vi = t_p * v[:, step.p]
+            if step.q != NEUTRAL:
+                vi += t_q * v[:, step.q]
+            v[:, step.node] = vi
     redo = weak | (~failed & ~np.isfinite(v).all(axis=1))
     if np.any(redo):  # the few members elimination cannot take: the full matrix, with pivoting
         v[redo], failed[redo] = stacked_solve(assemble(plan.n_nodes, plan.a, plan.b, y[redo]), inj[redo])
