@@ -151,21 +151,23 @@ def _half_turn_positive(angle_deg: NDArray) -> NDArray:
     return np.where(angle_deg == -180.0, 180.0, angle_deg)
 
 
-CREST_POINTS_PER_PERIOD = 8  # coarse samples per period of the highest order, before the peak is refined
+CREST_POINTS = 256  # samples per fundamental period (more when the highest order needs them)
+CREST_POINTS_PER_PERIOD = 16  # at least this many samples per period of the highest order
 CREST_CHUNK = 4096  # waveforms sampled at a time: (chunk, points) stays a few MB
 
 
 def _crest(x: NDArray, orders: list[int]) -> NDArray:
     """Crest factor of periodic signals from their RMS harmonic phasors (M, H, S) of ``orders``, over one period.
 
-    The waveform sqrt(2) Re(sum_h X_h e^(j h theta)) is sampled coarsely (``CREST_POINTS_PER_PERIOD``
-    points per period of the highest order, at least 64); the largest sample is refined by two
-    Newton steps on the waveform's derivative, kept only where they raise it (any value the
-    waveform takes is at most its peak). The RMS is sqrt(sum |X_h|^2) (Parseval).
+    The waveform sqrt(2) Re(sum_h X_h e^(j h theta)) is sampled uniformly (``CREST_POINTS`` points, or
+    ``CREST_POINTS_PER_PERIOD`` per period of the highest order if more); from the vertex of the
+    parabola through the largest sample and its neighbours, two Newton steps on the waveform's
+    derivative refine the peak. The largest value the waveform takes at any of these points is the
+    peak, so it never exceeds the true one. The RMS is sqrt(sum |X_h|^2) (Parseval).
     """
     m, h, s = x.shape
     h_arr = np.asarray(orders, dtype=float)
-    points = max(64, 16 * math.ceil(CREST_POINTS_PER_PERIOD * max(orders) / 16))
+    points = max(CREST_POINTS, 16 * math.ceil(CREST_POINTS_PER_PERIOD * max(orders) / 16))
     theta = 2 * np.pi * np.arange(points) / points
     # [Re X, Im X] @ sqrt(2) [cos; -sin]: all samples of a chunk of waveforms in one real matrix product
     basis = np.sqrt(2) * np.concatenate([np.cos(h_arr[:, None] * theta), -np.sin(h_arr[:, None] * theta)])
@@ -175,43 +177,32 @@ def _crest(x: NDArray, orders: list[int]) -> NDArray:
     flat = parts.reshape(m * s, 2 * h)
     peak = np.empty(m * s)
     at = np.empty(m * s)
+    spacing = 2 * np.pi / points
     for start in range(0, m * s, CREST_CHUNK):
         wave = np.abs(flat[start : start + CREST_CHUNK] @ basis)
+        rows = np.arange(wave.shape[0])
         k = np.argmax(wave, axis=1)
-        peak[start : start + CREST_CHUNK] = wave[np.arange(k.size), k]
-        at[start : start + CREST_CHUNK] = theta[k]
+        y0, y_left, y_right = wave[rows, k], wave[rows, k - 1], wave[rows, (k + 1) % points]
+        curvature = 2 * y0 - y_left - y_right
+        with np.errstate(invalid="ignore", divide="ignore"):
+            offset = np.where(curvature > 0, (y_right - y_left) / (2 * curvature), 0.0)
+        peak[start : start + CREST_CHUNK] = y0
+        at[start : start + CREST_CHUNK] = theta[k] + np.clip(np.nan_to_num(offset), -0.5, 0.5) * spacing
+    # from the parabola's vertex, Newton steps on w'(theta) = 0; every value kept is one the waveform takes
     phasors = np.swapaxes(x, 0, 1).reshape(h, m * s)  # (H, waveforms): each order's phasors contiguous
-    for newton in range(3):  # two Newton steps on w'(theta) = 0 near the largest sample, then the value there
-        terms = phasors * _powers(np.exp(1j * at), orders)  # X_h e^(j h theta)
-        value = np.sqrt(2) * np.abs(terms.sum(axis=0).real)
-        peak = np.maximum(peak, value)
+    for newton in range(3):
+        terms = phasors * np.exp(1j * h_arr[:, None] * at[None, :])  # X_h e^(j h theta)
+        peak = np.maximum(peak, np.sqrt(2) * np.abs(terms.sum(axis=0).real))
         if newton == 2:
             break
         d1 = -(h_arr @ terms).imag  # w' / sqrt(2)
         d2 = -(h_arr**2 @ terms).real  # w'' / sqrt(2)
         with np.errstate(invalid="ignore", divide="ignore"):
             step = np.where(d2 != 0, -d1 / d2, 0.0)
-        at = at + np.clip(np.nan_to_num(step), -np.pi / points, np.pi / points)
+        at = at + np.clip(np.nan_to_num(step), -spacing / 2, spacing / 2)
     rms = np.sqrt(np.sum(flat**2, axis=1))
     with np.errstate(invalid="ignore", divide="ignore"):
         return (peak / rms).reshape(m, s)
-
-
-def _powers(z: NDArray[np.complex128], orders: list[int]) -> NDArray[np.complex128]:
-    """z**h for each of the increasing ``orders`` (H, len(z)), by multiplication rather than exp/log."""
-    out = np.empty((len(orders), z.size), dtype=complex)
-    steps: dict[int, NDArray[np.complex128]] = {}
-    previous = 0
-    for k, order in enumerate(orders):
-        gap = order - previous
-        if gap not in steps:
-            steps[gap] = z**gap
-        if k == 0:
-            out[0] = steps[gap]
-        else:
-            np.multiply(out[k - 1], steps[gap], out=out[k])
-        previous = order
-    return out
 
 
 def quantity_arrays(sol: Solution, locations: set[str] | None = None) -> tuple[list[RowLabel], NDArray[np.float64]]:
