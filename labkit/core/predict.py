@@ -141,6 +141,7 @@ def _sampled_band(net: Network, factors: NDArray[np.float64], harmonics: bool, l
     n = factors.shape[0]
     step = _block_samples(net)
     starts = list(range(0, n, step))
+
     def solve(block: slice) -> Solution:
         return solve_network(net, factors[block], harmonics=harmonics, warm_start=nominal)
 
