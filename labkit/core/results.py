@@ -191,7 +191,7 @@ def _crest(x: NDArray, orders: list[int]) -> NDArray:
     # from the parabola's vertex, Newton steps on w'(theta) = 0; every value kept is one the waveform takes
     phasors = np.swapaxes(x, 0, 1).reshape(h, m * s)  # (H, waveforms): each order's phasors contiguous
     for newton in range(3):
-        terms = phasors * np.exp(1j * h_arr[:, None] * at[None, :])  # X_h e^(j h theta)
+        terms = phasors * _powers(np.exp(1j * at), orders)  # X_h e^(j h theta)
         peak = np.maximum(peak, np.sqrt(2) * np.abs(terms.sum(axis=0).real))
         if newton == 2:
             break
@@ -203,6 +203,23 @@ def _crest(x: NDArray, orders: list[int]) -> NDArray:
     rms = np.sqrt(np.sum(flat**2, axis=1))
     with np.errstate(invalid="ignore", divide="ignore"):
         return (peak / rms).reshape(m, s)
+
+
+def _powers(z: NDArray[np.complex128], orders: list[int]) -> NDArray[np.complex128]:
+    """z**h for each of the increasing ``orders`` (H, len(z)), by multiplication rather than exp/log."""
+    out = np.empty((len(orders), z.size), dtype=complex)
+    steps: dict[int, NDArray[np.complex128]] = {}
+    previous = 0
+    for k, order in enumerate(orders):
+        gap = order - previous
+        if gap not in steps:
+            steps[gap] = z**gap
+        if k == 0:
+            out[0] = steps[gap]
+        else:
+            np.multiply(out[k - 1], steps[gap], out=out[k])
+        previous = order
+    return out
 
 
 def quantity_arrays(sol: Solution, locations: set[str] | None = None) -> tuple[list[RowLabel], NDArray[np.float64]]:
