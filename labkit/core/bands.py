@@ -102,7 +102,7 @@ class StreamingPercentiles:
             self._whole[:] = True  # one block, or too few samples to bracket: keep every row
         else:
             sub = np.where(finite[:, None], block[:, :s], 0.0)  # rows with NaN are kept whole anyway
-            at = [None if j[0] is None else j[0], None if j[1] is None else s - 1 - j[1]]
+            at = [j[0], None if j[1] is None else s - 1 - j[1]]  # positions of the thresholds, ascending order
             sub.partition(sorted(k for k in at if k is not None), axis=1)
             for tail in (0, 1):
                 if at[tail] is None:
