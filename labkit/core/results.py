@@ -8,7 +8,6 @@ Rows are computed place-major: each quantity of many places at once, as one
 
 from __future__ import annotations
 
-import math
 from collections.abc import Callable
 from dataclasses import dataclass
 
@@ -167,7 +166,7 @@ def _crest(x: NDArray, orders: list[int]) -> NDArray:
     """
     m, h, s = x.shape
     h_arr = np.asarray(orders, dtype=float)
-    points = max(CREST_POINTS, 16 * math.ceil(CREST_POINTS_PER_PERIOD * max(orders) / 16))
+    points = max(CREST_POINTS, CREST_POINTS_PER_PERIOD * max(orders))
     theta = 2 * np.pi * np.arange(points) / points
     # [Re X, Im X] @ sqrt(2) [cos; -sin]: all samples of a chunk of waveforms in one real matrix product
     basis = np.sqrt(2) * np.concatenate([np.cos(h_arr[:, None] * theta), -np.sin(h_arr[:, None] * theta)])
