@@ -194,46 +194,66 @@ class ElementModel:
     def admittances(self, factors: NDArray[np.float64] | None, omega: float | NDArray) -> NDArray[np.complex128]:
         """Element admittances (S, E) for factors (S, n_params) (None: nominal, S = 1).
 
-        ``omega`` (rad/s) is a scalar, (S, 1) per member, or (S, E) per element.
+        ``omega`` (rad/s) is a scalar, (S, 1) per member, or (S, E) per element. The result is
+        the (S, E) view of an element-major (E, S) array: every element's samples are contiguous,
+        so each term is computed with the samples as numpy's inner loop (a sample-major layout
+        would loop over a handful of elements per sample) and a reduction reads columns for free.
         """
         if factors is None:
             factors = np.ones((1, self.n_params))
-        pad = np.concatenate([factors, np.ones((factors.shape[0], 1))], axis=1)  # index -1 -> factor 1
         w = np.asarray(omega, dtype=float)
         s = max(factors.shape[0], w.shape[0] if w.ndim == 2 else 1)  # nominal factors may meet stacked omegas
-        per_element = w.ndim == 2 and w.shape[1] == self.n_elements and self.n_elements > 1
+        pad = np.empty((self.n_params + 1, factors.shape[0]))  # (params + 1, S): index -1 -> factor 1
+        pad[:-1] = factors.T
+        pad[-1] = 1.0
+        w_t = w.T if w.ndim == 2 else w.reshape(1, -1)  # (1 or E, S or 1)
+        per_element = w_t.shape[0] == self.n_elements and self.n_elements > 1
 
         def at(cols: NDArray[np.intp]) -> NDArray[np.float64]:
-            return w[:, cols] if per_element else w
+            return w_t[cols] if per_element else w_t
 
-        out = np.empty((s, self.n_elements), dtype=complex)
+        def factor(param: NDArray[np.intp]) -> NDArray[np.float64]:
+            return pad[param] if pad.shape[1] == s else np.broadcast_to(pad[param], (param.size, s))
+
+        out = np.empty((self.n_elements, s), dtype=complex)
         with np.errstate(divide="ignore", invalid="ignore"):
             if self.series.size:
                 w_ser = at(self.series)
-                r = self.ser_r * pad[:, self.ser_r_param]
-                x = (w_ser * self.ser_l) * pad[:, self.ser_l_param]
+                r = factor(self.ser_r_param) * self.ser_r[:, None]
+                x = factor(self.ser_l_param) * (w_ser * self.ser_l[:, None])
                 if self.ser_c_at.size:
-                    w_c = w_ser[:, self.ser_c_at] if per_element else w_ser
-                    x[:, self.ser_c_at] -= 1.0 / ((w_c * self.ser_c) * pad[:, self.ser_c_param])
-                den = r * r + x * x
-                part = np.empty((s, self.series.size), dtype=complex)
-                part.real = r / den
-                part.imag = -x / den
-                out[:, self.series] = part
+                    w_c = w_ser[self.ser_c_at] if per_element else w_ser
+                    x[self.ser_c_at] -= 1.0 / (factor(self.ser_c_param) * (w_c * self.ser_c[:, None]))
+                den = r * r
+                den += x * x
+                run = _as_slice(self.series)
+                part = out[run] if run is not None else np.empty((self.series.size, s), dtype=complex)
+                np.divide(r, den, out=part.real)
+                np.divide(x, den, out=part.imag)
+                np.negative(part.imag, out=part.imag)
+                if run is None:
+                    out[self.series] = part
             if self.parallel.size:
-                part = np.zeros((s, self.parallel.size), dtype=complex)
+                part = np.zeros((self.parallel.size, s), dtype=complex)
                 if self.par_g_at.size:
-                    part.real[:, self.par_g_at] = 1.0 / (self.par_r * pad[:, self.par_r_param])
+                    part.real[self.par_g_at] = 1.0 / (factor(self.par_r_param) * self.par_r[:, None])
                 if self.par_c_at.size:
                     w_c = at(self.parallel[self.par_c_at])
-                    part.imag[:, self.par_c_at] = (w_c * self.par_c) * pad[:, self.par_c_param]
+                    part.imag[self.par_c_at] = factor(self.par_c_param) * (w_c * self.par_c[:, None])
                 if self.par_l_at.size:
-                    part.imag[:, self.par_l_at] -= 1.0 / ((at(self.parallel[self.par_l_at]) * self.par_l)
-                                                          * pad[:, self.par_l_param])
-                out[:, self.parallel] = part
+                    part.imag[self.par_l_at] -= 1.0 / (factor(self.par_l_param)
+                                                       * (at(self.parallel[self.par_l_at]) * self.par_l[:, None]))
+                out[self.parallel] = part
         if self.fixed.size:
-            out[:, self.fixed] = self.fix_y * pad[:, self.fix_param]
-        return out
+            out[self.fixed] = factor(self.fix_param) * self.fix_y[:, None]
+        return out.T
+
+
+def _as_slice(index: NDArray[np.intp]) -> slice | None:
+    """The slice of an index array that is one increasing run (a view to write into), else None."""
+    if index.size and int(index[-1]) - int(index[0]) == index.size - 1 and bool(np.all(np.diff(index) == 1)):
+        return slice(int(index[0]), int(index[-1]) + 1)
+    return None
 
 
 def assemble(n_nodes: int, a: NDArray, b: NDArray, y: NDArray) -> NDArray[np.complex128]:
@@ -286,8 +306,8 @@ def stamp_pattern(n_nodes: int, a: NDArray, b: NDArray) -> tuple[NDArray[np.floa
 def _assemble_shared(n_nodes: int, a: NDArray, b: NDArray, y: NDArray) -> NDArray[np.complex128]:
     """Many samples of one pattern: a small real stamp matrix turns the scatter into one matmul."""
     stamp, unique = stamp_pattern(n_nodes, a, b)
-    # one real matmul on the interleaved (re, im) pairs: (S, 2, E) @ (E, U)
-    pairs = np.ascontiguousarray(y.view(np.float64).reshape(y.shape[0], a.size, 2).transpose(0, 2, 1))
+    # one real matmul on the (re, im) pairs: (S, 2, E) @ (E, U); any memory layout of y
+    pairs = np.stack([y.real, y.imag], axis=1)
     stamped = pairs @ stamp
     out = np.zeros((y.shape[0], n_nodes * n_nodes), dtype=complex)
     out.real[:, unique] = stamped[:, 0]

@@ -152,6 +152,8 @@ def reduced_solve(plan: EliminationPlan, y: NDArray[np.complex128],
                   inj: NDArray[np.complex128]) -> tuple[NDArray[np.complex128], NDArray[np.bool_]]:
     """Node voltages (S, N) of element admittances ``y`` (S, E) and injections ``inj`` (S, N).
 
+    The voltages are the (S, N) view of a node-major array (each node's samples contiguous).
+
     Members whose reduced matrix is singular come back NaN and flagged, as from
     :func:`labkit.core.solve.stacked_solve`; members with a weak pivot (see ``WEAK_PIVOT``)
     are solved in full instead.
@@ -160,7 +162,7 @@ def reduced_solve(plan: EliminationPlan, y: NDArray[np.complex128],
     from labkit.core.solve import stacked_solve
 
     s = y.shape[0]
-    yt = np.ascontiguousarray(y.T)  # (E, S): each element's samples contiguous
+    yt = np.ascontiguousarray(y.T)  # (E, S): each element's samples contiguous (free for an element-major y)
     columns: list[NDArray | None] = [*yt, *([None] * (plan.n_columns - plan.n_elements))]
     weights: list[tuple[NDArray, NDArray]] = []
     weak = np.zeros(s, dtype=bool)
@@ -179,24 +181,27 @@ def reduced_solve(plan: EliminationPlan, y: NDArray[np.complex128],
             if step.new_qs >= 0:
                 columns[step.new_qs] = t_q * y_s
             weights.append((t_p, t_q))
-    y_red = np.stack([columns[c] for c in plan.reduced_cols], axis=1) if plan.reduced_cols.size else np.zeros((s, 0))
     n = plan.n_kept
     flat = np.zeros((s, n * n), dtype=complex)
     if plan.positions.size:
-        pairs = np.stack([y_red.real, y_red.imag], axis=1)  # one real matmul: (S, 2, E') @ (E', U)
+        pairs = np.empty((s, 2, plan.reduced_cols.size))  # one real matmul: (S, 2, E') @ (E', U)
+        for k, c in enumerate(plan.reduced_cols):
+            pairs[:, 0, k] = columns[c].real  # type: ignore[union-attr]
+            pairs[:, 1, k] = columns[c].imag  # type: ignore[union-attr]
         stamped = pairs @ plan.stamp
         flat.real[:, plan.positions] = stamped[:, 0]
         flat.imag[:, plan.positions] = stamped[:, 1]
-    v = np.empty((s, plan.n_nodes), dtype=complex)
+    v_t = np.empty((plan.n_nodes, s), dtype=complex)  # node-major: back-substitution writes whole rows
     v_kept, failed = stacked_solve(flat.reshape(s, n, n), inj[:, plan.kept])
-    v[:, plan.kept] = v_kept
+    v_t[plan.kept] = v_kept.T
     with np.errstate(invalid="ignore", over="ignore"):  # weak members' values are garbage, solved again below
         for step, (t_p, t_q) in zip(reversed(plan.steps), reversed(weights), strict=True):
-            vi = t_p * v[:, step.p]
+            vi = v_t[step.node]
+            np.multiply(t_p, v_t[step.p], out=vi)
             if step.q != NEUTRAL:
-                vi += t_q * v[:, step.q]
-            v[:, step.node] = vi
-    redo = weak | (~failed & ~np.isfinite(v).all(axis=1))
+                vi += t_q * v_t[step.q]
+    v = v_t.T  # (S, N), a view
+    redo = weak | (~failed & ~np.isfinite(v_t).all(axis=0))
     if np.any(redo):  # the few members elimination cannot take: the full matrix, with pivoting
         v[redo], failed[redo] = stacked_solve(assemble(plan.n_nodes, plan.a, plan.b, y[redo]), inj[redo])
     if np.any(failed):

@@ -210,24 +210,27 @@ def _check_conditioning(net: Network, ymat: NDArray, y_el: NDArray) -> None:
 def _currents(arr_a: NDArray, arr_b: NDArray, v: NDArray, y_el: NDArray) -> NDArray:
     """Element currents (S, E) from node voltages (S, N); node index -1 is the neutral (0 V).
 
+    The result is the (S, E) view of an element-major array.
+
     The voltage across each element is one matrix product with the element-node incidence
     matrix (entries +1, -1, 0: exact for finite voltages, and far faster than gathering columns);
     members with a non-finite voltage (a singular member is NaN) are gathered instead, so a NaN
     stays where it belongs.
     """
     n_nodes = v.shape[1]
-    incidence = np.zeros((n_nodes, arr_a.size))
+    incidence = np.zeros((arr_a.size, n_nodes))
     elements = np.arange(arr_a.size)
-    incidence[arr_a[arr_a >= 0], elements[arr_a >= 0]] = 1.0
-    incidence[arr_b[arr_b >= 0], elements[arr_b >= 0]] -= 1.0
-    across = v @ incidence
+    incidence[elements[arr_a >= 0], arr_a[arr_a >= 0]] = 1.0
+    incidence[elements[arr_b >= 0], arr_b[arr_b >= 0]] -= 1.0
+    # element-major (E, S), as the stacked admittances and voltages are laid out: no transposing copies
+    across = (incidence @ v.T).astype(complex, copy=False) if v.shape[0] > 1 else (v @ incidence.T).T
     bad = ~np.isfinite(v).all(axis=1)
     if bad.any():
         v_ext = np.zeros((int(bad.sum()), n_nodes + 1), dtype=complex)
         v_ext[:, :-1] = v[bad]  # the last column stands for the neutral, so index -1 reads 0 V
-        across[bad] = v_ext[:, arr_a] - v_ext[:, arr_b]
-    across *= y_el  # in place: a fresh array of this size costs its page faults again on every block
-    return across
+        across[:, bad] = (v_ext[:, arr_a] - v_ext[:, arr_b]).T
+    across *= y_el.T  # in place: a fresh array of this size costs its page faults again on every block
+    return across.T
 
 
 def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, harmonics: bool = True,
@@ -411,8 +414,17 @@ def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, h
         isrc_all += isrc_h
     if np.any(failed):
         warnings.append(f"{int(np.sum(failed))} stacked member(s) had a singular admittance matrix")
-    return Solution(net, orders, np.stack(v_all, 1), np.stack(i_all, 1), emf, fn, np.stack(isrc_all, 1),
+    return Solution(net, orders, _sample_last(v_all), _sample_last(i_all), emf, fn, _sample_last(isrc_all),
                     converged, n_iter, warnings, failed)
+
+
+def _sample_last(per_order: list[NDArray[np.complex128]]) -> NDArray[np.complex128]:
+    """(S, H, X) from one (S, X) array per order, stored (X, H, S): every place's samples contiguous,
+    the layout the readings are computed in (:mod:`labkit.core.results`), so they need no copy."""
+    out = np.empty((per_order[0].shape[1], len(per_order), per_order[0].shape[0]), dtype=complex)
+    for k, x in enumerate(per_order):
+        out[:, k] = x.T
+    return out.transpose(2, 1, 0)
 
 
 def _node_islands(net: Network) -> list[set[int]]:
