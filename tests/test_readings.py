@@ -190,3 +190,34 @@ def test_predicted_crest_factors_of_flat_and_double_peaked_waves_stay_close():
     expected = np.max(np.abs(wave), axis=1) / np.sqrt(np.sum(np.abs(spectra) ** 2, axis=1))
     assert np.max(np.abs(got / expected - 1)) < 5e-4
     assert np.all(got <= expected * (1 + 1e-6))  # only values the waveform takes: never above its peak
+
+
+@pytest.mark.parametrize("spread", [0.02, 0.1, 0.5])
+def test_crest_factors_of_tolerance_samples_from_the_points_near_the_peak(spread, monkeypatch):
+    # tolerance samples scattered around twin-peaked and flat-topped waves; the points kept near the
+    # mean wave's peak must give what every point gives (reference: 40,000 points per period, numpy)
+    from labkit.core import results
+
+    rng = np.random.default_rng(7)
+    orders = [1, 3, 5, 7, 9]
+    mean = (rng.normal(size=(6, 5, 1)) + 1j * rng.normal(size=(6, 5, 1))) * np.array([1, 0.3, 0.2, 0.1, 0.05])[:, None]
+    jitter = rng.uniform(-1, 1, size=(2, 6, 5, 400))
+    x = mean * (1 + spread * (jitter[0] + 1j * jitter[1]))
+    points = max(results.CREST_POINTS, results.CREST_POINTS_PER_PERIOD * max(orders))
+    theta = 2 * np.pi * np.arange(points) / points
+    h = np.array(orders, dtype=float)[:, None]
+    basis = np.sqrt(2) * np.concatenate([np.cos(h * theta), -np.sin(h * theta)])
+    parts = np.concatenate([x.real, x.imag], axis=1).swapaxes(1, 2)
+    kept = [results._crest_points(x[m], np.ascontiguousarray(parts[m]), basis).size for m in range(6)]
+    got = results._crest(x, orders)
+    monkeypatch.setattr(results, "_crest_points", lambda x, parts, basis: np.arange(basis.shape[1]))
+    every_point = results._crest(x, orders)
+    np.testing.assert_allclose(got, every_point, rtol=1e-12)
+    if spread <= 0.1:
+        assert max(kept) < points  # the narrow spreads do skip points
+    dense = np.linspace(0.0, 2 * np.pi, 40_000, endpoint=False)
+    spectra = x.transpose(0, 2, 1).reshape(-1, 5)
+    wave = np.sqrt(2) * np.real(spectra @ np.exp(1j * np.outer(orders, dense)))
+    expected = (np.max(np.abs(wave), axis=1) / np.sqrt(np.sum(np.abs(spectra) ** 2, axis=1))).reshape(6, 400)
+    assert np.max(np.abs(got / expected - 1)) < 5e-4
+    assert np.all(got <= expected * (1 + 1e-6))

@@ -160,9 +160,13 @@ def _crest(x: NDArray, orders: list[int]) -> NDArray:
 
     The waveform sqrt(2) Re(sum_h X_h e^(j h theta)) is sampled uniformly (``CREST_POINTS`` points, or
     ``CREST_POINTS_PER_PERIOD`` per period of the highest order if more); from the vertex of the
-    parabola through the largest sample and its neighbours, two Newton steps on the waveform's
-    derivative refine the peak. The largest value the waveform takes at any of these points is the
+    parabola through the largest sample and its neighbours, a Newton step on the waveform's
+    derivative refines the peak. The largest value the waveform takes at any of these points is the
     peak, so it never exceeds the true one. The RMS is sqrt(sum |X_h|^2) (Parseval).
+
+    Tolerance samples of one place are waveforms close to their mean, so only the sample points
+    where the mean waveform comes near its peak are evaluated (:func:`_crest_points`); the largest
+    sample is the same one the full set of points would give.
     """
     m, h, s = x.shape
     h_arr = np.asarray(orders, dtype=float)
@@ -177,31 +181,60 @@ def _crest(x: NDArray, orders: list[int]) -> NDArray:
     peak = np.empty(m * s)
     at = np.empty(m * s)
     spacing = 2 * np.pi / points
-    for start in range(0, m * s, CREST_CHUNK):
-        wave = np.abs(flat[start : start + CREST_CHUNK] @ basis)
-        rows = np.arange(wave.shape[0])
-        k = np.argmax(wave, axis=1)
-        y0, y_left, y_right = wave[rows, k], wave[rows, k - 1], wave[rows, (k + 1) % points]
-        curvature = 2 * y0 - y_left - y_right
-        with np.errstate(invalid="ignore", divide="ignore"):
-            offset = np.where(curvature > 0, (y_right - y_left) / (2 * curvature), 0.0)
-        peak[start : start + CREST_CHUNK] = y0
-        at[start : start + CREST_CHUNK] = theta[k] + np.clip(np.nan_to_num(offset), -0.5, 0.5) * spacing
-    # from the parabola's vertex, Newton steps on w'(theta) = 0; every value kept is one the waveform takes
+    for place in range(m):
+        cols = _crest_points(x[place], parts[place], basis)
+        where = np.full(points, -1, dtype=np.intp)  # sample point -> its column in the product
+        where[cols] = np.arange(cols.size)
+        sub = basis[:, cols]
+        for start in range(0, s, CREST_CHUNK):
+            wave = np.abs(parts[place, start : start + CREST_CHUNK] @ sub)
+            rows = np.arange(wave.shape[0])
+            k = cols[np.argmax(wave, axis=1)]
+            y0 = wave[rows, where[k]]
+            y_left, y_right = wave[rows, where[k - 1]], wave[rows, where[(k + 1) % points]]
+            curvature = 2 * y0 - y_left - y_right
+            with np.errstate(invalid="ignore", divide="ignore"):
+                offset = np.where(curvature > 0, (y_right - y_left) / (2 * curvature), 0.0)
+            done = slice(place * s + start, place * s + start + wave.shape[0])
+            peak[done] = y0
+            at[done] = theta[k] + np.clip(np.nan_to_num(offset), -0.5, 0.5) * spacing
+    # from the parabola's vertex, a Newton step on w'(theta) = 0; every value kept is one the waveform takes
     phasors = np.swapaxes(x, 0, 1).reshape(h, m * s)  # (H, waveforms): each order's phasors contiguous
-    for newton in range(3):
-        terms = phasors * _powers(np.exp(1j * at), orders)  # X_h e^(j h theta)
-        peak = np.maximum(peak, np.sqrt(2) * np.abs(terms.sum(axis=0).real))
-        if newton == 2:
-            break
-        d1 = -(h_arr @ terms).imag  # w' / sqrt(2)
-        d2 = -(h_arr**2 @ terms).real  # w'' / sqrt(2)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            step = np.where(d2 != 0, -d1 / d2, 0.0)
-        at = at + np.clip(np.nan_to_num(step), -spacing / 2, spacing / 2)
+    terms = phasors * _powers(np.exp(1j * at), orders)  # X_h e^(j h theta) at the vertex
+    peak = np.maximum(peak, np.sqrt(2) * np.abs(terms.sum(axis=0).real))
+    d1 = -(h_arr @ terms).imag  # w' / sqrt(2)
+    d2 = -(h_arr**2 @ terms).real  # w'' / sqrt(2)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        step = np.where(d2 != 0, -d1 / d2, 0.0)
+    at += np.clip(np.nan_to_num(step), -spacing / 2, spacing / 2)
+    terms = phasors * _powers(np.exp(1j * at), orders)
+    peak = np.maximum(peak, np.sqrt(2) * np.abs(terms.sum(axis=0).real))
     rms = np.sqrt(np.sum(flat**2, axis=1))
     with np.errstate(invalid="ignore", divide="ignore"):
         return (peak / rms).reshape(m, s)
+
+
+def _crest_points(x: NDArray, parts: NDArray, basis: NDArray) -> NDArray[np.intp]:
+    """The sample points (indices into ``basis``'s columns) where waveforms (H, S) of one place can peak.
+
+    With the mean phasors as reference, a waveform differs from the reference waveform by at most
+    its deviation sqrt(2) sum_h |X_h - mean_h| at every angle; its largest sample is at least its
+    value at the reference's largest sample. So its largest sample lies where the reference is within
+    (that value - deviation) of it: those points, and their neighbours for the parabola, are kept.
+    Every point is kept when the samples are spread widely or are not finite.
+    """
+    points = basis.shape[1]
+    reference = x.mean(axis=1)
+    ref_wave = np.abs(np.concatenate([reference.real, reference.imag]) @ basis)
+    k0 = int(np.argmax(ref_wave))
+    deviation = np.sqrt(2) * np.abs(x - reference[:, None]).sum(axis=0)
+    floor = float(np.min(np.abs(parts @ basis[:, k0]) - deviation))
+    floor -= 1e-9 * float(ref_wave[k0])  # rounding of the products
+    if not np.isfinite(floor):
+        return np.arange(points)
+    near = ref_wave >= floor
+    near |= np.roll(near, 1) | np.roll(near, -1)
+    return np.flatnonzero(near)
 
 
 def _powers(z: NDArray[np.complex128], orders: list[int]) -> NDArray[np.complex128]:
