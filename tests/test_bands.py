@@ -7,6 +7,7 @@ interpolation (the definition the bands use), on the whole (rows, samples) array
 from __future__ import annotations
 
 import warnings
+from concurrent.futures import Executor, ThreadPoolExecutor
 
 import numpy as np
 import pytest
@@ -22,7 +23,8 @@ def _reference(values: np.ndarray) -> np.ndarray:
         return np.nanpercentile(clean, BAND_PERCENTILES, axis=1)
 
 
-def _stream(values: np.ndarray, step: int, order: list[int] | None = None) -> np.ndarray | None:
+def _stream(values: np.ndarray, step: int, order: list[int] | None = None, pool: Executor | None = None
+            ) -> np.ndarray | None:
     n = values.shape[1]
     selector = StreamingPercentiles(values.shape[0], n)
     starts = list(range(0, n, step))
@@ -32,7 +34,7 @@ def _stream(values: np.ndarray, step: int, order: list[int] | None = None) -> np
         buffer = values[:, start : start + step].copy()
         selector.add(buffer, start)
         buffer[:] = -1.0  # the selector keeps nothing of a block's buffer
-    return selector.result()
+    return selector.result(pool)
 
 
 def _mixed_rows(rng: np.random.Generator, n: int) -> np.ndarray:
@@ -54,6 +56,19 @@ def test_streaming_equals_numpy_percentile(n: int, step: int) -> None:
     got = _stream(values, step)
     assert got is not None
     np.testing.assert_allclose(got, np.percentile(values, BAND_PERCENTILES, axis=1), rtol=1e-14, atol=0)
+
+
+def test_the_high_tail_on_another_thread_gives_the_same_band() -> None:
+    values = _mixed_rows(np.random.default_rng(5), 8000)
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        threaded = _stream(values, 2000, pool=pool)
+        late_nan = values.copy()
+        late_nan[0, 6000] = np.nan
+        short = _stream(late_nan, 2000, pool=pool)
+    assert threaded is not None
+    np.testing.assert_array_equal(threaded, _stream(values, 2000))
+    np.testing.assert_allclose(threaded, np.percentile(values, BAND_PERCENTILES, axis=1), rtol=1e-14, atol=0)
+    assert short is None
 
 
 def test_block_order_does_not_matter() -> None:
@@ -128,7 +143,7 @@ def test_prediction_falls_back_to_keeping_every_sample(demo_bench, monkeypatch: 
     state = states_after_steps(demo_bench, load_template(DEMO / "lab2-synchronize.toml", demo_bench).template)[-1]
     monkeypatch.setattr(predict, "BAND_BLOCK_MAX_SAMPLES", 1000)
     streamed = predict.predict_state(demo_bench, state, n_samples=5000, seed=4)
-    monkeypatch.setattr(StreamingPercentiles, "result", lambda self: None)
+    monkeypatch.setattr(StreamingPercentiles, "result", lambda self, pool=None: None)
     plain = predict.predict_state(demo_bench, state, n_samples=5000, seed=4)
     np.testing.assert_array_equal(streamed.band_low, plain.band_low)
     np.testing.assert_array_equal(streamed.band_high, plain.band_high)

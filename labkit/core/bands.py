@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import math
 import warnings
+from concurrent.futures import Executor
 
 import numpy as np
 from numpy.typing import NDArray
@@ -146,8 +147,11 @@ class StreamingPercentiles:
                 tails.append((np.diff(np.searchsorted(at, bounds)), values if tail == 0 else -values))
         self._blocks.append((b, tails))
 
-    def result(self) -> NDArray[np.float64] | None:
-        """(len(percentiles), n_rows), or None when the candidates do not determine some row."""
+    def result(self, pool: Executor | None = None) -> NDArray[np.float64] | None:
+        """(len(percentiles), n_rows), or None when the candidates do not determine some row.
+
+        With a ``pool``, the high tail is selected on it while this thread takes the low one.
+        """
         seen = sum(blk[0] for blk in self._blocks)
         if seen != self.n:
             msg = f"{seen} of {self.n} samples given"
@@ -156,27 +160,36 @@ class StreamingPercentiles:
             return None
         out = np.full((len(self.percentiles), self.n_rows), np.nan)
         whole = self._whole
+        streamed = ~whole
+        high = None
+        if streamed.any() and pool is not None:
+            high = pool.submit(self._tail_percentiles, 1, streamed, out)
+        decided = not streamed.any() or self._tail_percentiles(0, streamed, out)
+        if streamed.any():
+            decided &= high.result() if high is not None else self._tail_percentiles(1, streamed, out)
         if whole.any():
             out[:, whole] = _whole_row_percentiles(self._whole_values, self.percentiles)
-        streamed = ~whole
-        if not streamed.any():
-            return out
-        for tail, sel in ((0, self._low), (1, ~self._low)):
-            if not sel.any():
-                continue
-            lo_r, hi_r = self.lo_rank[sel], self.hi_rank[sel]
-            if tail == 1:  # ranks counted from the top: the high tail holds negated values
-                lo_r, hi_r = self.n - 1 - lo_r, self.n - 1 - hi_r
-            kth = np.unique(np.concatenate([lo_r, hi_r]))
-            cand, filled = self._gather(tail, streamed)
-            if np.any(filled <= kth.max()):
-                return None  # a threshold fell short of the percentile (a rare sample)
-            cand.partition(kth, axis=1)
-            sign = 1.0 if tail == 0 else -1.0
-            for m, p_index in enumerate(np.flatnonzero(sel)):
-                f = self.frac[p_index]
-                out[p_index, streamed] = sign * (cand[:, lo_r[m]] * (1 - f) + cand[:, hi_r[m]] * f)
-        return out
+        return out if decided else None
+
+    def _tail_percentiles(self, tail: int, streamed: NDArray[np.bool_], out: NDArray[np.float64]) -> bool:
+        """Fill ``out``'s percentiles of one tail (0: low, 1: high) for the streamed rows; False when
+        a threshold fell short of the percentile (a rare sample)."""
+        sel = self._low if tail == 0 else ~self._low
+        if not sel.any():
+            return True
+        lo_r, hi_r = self.lo_rank[sel], self.hi_rank[sel]
+        if tail == 1:  # ranks counted from the top: the high tail holds negated values
+            lo_r, hi_r = self.n - 1 - lo_r, self.n - 1 - hi_r
+        kth = np.unique(np.concatenate([lo_r, hi_r]))
+        cand, filled = self._gather(tail, streamed)
+        if np.any(filled <= kth.max()):
+            return False
+        cand.partition(kth, axis=1)
+        sign = 1.0 if tail == 0 else -1.0
+        for m, p_index in enumerate(np.flatnonzero(sel)):
+            f = self.frac[p_index]
+            out[p_index, streamed] = sign * (cand[:, lo_r[m]] * (1 - f) + cand[:, hi_r[m]] * f)
+        return True
 
     def _gather(self, tail: int, rows: NDArray[np.bool_]) -> tuple[NDArray[np.float64], NDArray[np.intp]]:
         """Every block's candidates of one tail for ``rows`` (the only rows with candidates), a row each,

@@ -9,12 +9,15 @@ switch changes pass through.
 
 from __future__ import annotations
 
+from concurrent.futures import ThreadPoolExecutor
+from contextlib import AbstractContextManager
 from dataclasses import dataclass, field
 
 import numpy as np
 from numpy.typing import NDArray
+from threadpoolctl import ThreadpoolController
 
-from labkit.core.bands import StreamingPercentiles, row_percentiles
+from labkit.core.bands import THRESHOLD_SUBSAMPLE, StreamingPercentiles, row_percentiles
 from labkit.core.bench import Bench
 from labkit.core.defaults import BAND_PERCENTILES, DEFAULT_SAMPLES, DEFAULT_SEED
 from labkit.core.errors import LabkitError
@@ -93,11 +96,15 @@ def predict_state(bench: Bench, state: BenchState, *, n_samples: int = DEFAULT_S
     places a step reads) plus every ``loading`` row; other rows then carry a NaN band.
     """
     net = compile_network(bench, state)
-    sol = solve_network(net, harmonics=harmonics)
-    labels, nominal = quantity_arrays(sol)
+    # BLAS on the calling thread only: its small products gain nothing from more, and idle BLAS
+    # threads spin on the core the band's selection thread needs
+    with _one_blas_thread():
+        sol = solve_network(net, harmonics=harmonics)
+        labels, nominal = quantity_arrays(sol)
+        if n_samples > 0 and net.parameters:
+            labels_mc, pct = _sampled_band(net, sample_factors(net, n_samples, seed), harmonics, band_locations, sol)
     low, high = nominal[0].copy(), nominal[0].copy()
     if n_samples > 0 and net.parameters:
-        labels_mc, pct = _sampled_band(net, sample_factors(net, n_samples, seed), harmonics, band_locations, sol)
         index = {(lab.location, lab.quantity): k for k, lab in enumerate(labels)}
         rows = np.array([index[(lab.location, lab.quantity)] for lab in labels_mc], dtype=np.intp)
         if band_locations is not None:
@@ -131,37 +138,63 @@ def _sampled_band(net: Network, factors: NDArray[np.float64], harmonics: bool, l
                   nominal: Solution | None = None) -> tuple[list[RowLabel], NDArray[np.float64]]:
     """Labels and band percentiles (2, rows) of every predicted quantity over the tolerance samples.
 
-    Blocks of samples are solved one after another into one reused buffer (fresh memory is
-    slow to touch); the first sets the selection's thresholds, and each block's rows are
-    selected down to the samples near each band edge. When the selection cannot decide a
+    Blocks of samples are solved one after another and their rows written into one reused
+    buffer (fresh memory is slow to touch); the first (short) block sets the selection's
+    thresholds, and each block's rows are selected down to the samples near each band edge,
+    on a worker thread while the next block is solved. When the selection cannot decide a
     row (a rare sample beyond a threshold, or rows that differ between blocks), every
     sample is solved again and kept (:func:`_sampled_rows`). Every block's iterations start
     from the ``nominal`` solution's operating point.
     """
     n = factors.shape[0]
     step = _block_samples(net)
-    starts = list(range(0, n, step))
+    # a short first block: its samples set the thresholds, and nothing overlaps its solve
+    head = min(THRESHOLD_SUBSAMPLE, step) if n > 2 * THRESHOLD_SUBSAMPLE else step
+    starts = [0, *range(head, n, step)]
+    stops = [*starts[1:], n]
 
     def solve(block: slice) -> Solution:
         return solve_network(net, factors[block], harmonics=harmonics, warm_start=nominal)
 
-    first = collect_quantity_rows(solve(slice(0, min(step, n))), locations)
+    first = collect_quantity_rows(solve(slice(0, min(head, n))), locations)
     labels, layout = first.labels, first.layout
     selector = StreamingPercentiles(first.n_rows, n, BAND_PERCENTILES)
-    buffer = first.matrix()
-    selector.start(buffer)
-    alike = True
-    for start in starts[1:]:
-        rows = collect_quantity_rows(solve(slice(start, start + step)), locations)
+    buffer = np.empty((first.n_rows, max(stop - start for start, stop in zip(starts, stops, strict=True))))
+
+    def select(sol: Solution, start: int) -> bool:
+        rows = collect_quantity_rows(sol, locations)
         if rows.layout != layout:
-            alike = False
-            break
+            return False
         selector.add(rows.write(buffer[:, : rows.n]), start)
-    pct = selector.result() if alike else None
+        return True
+
+    # a worker thread takes the quantities of one block and selects them while the next is solved
+    # (numpy releases the GIL in both); one block waits at most, so memory stays bounded
+    alike = True
+    with ThreadPoolExecutor(max_workers=1) as worker:
+        pending = worker.submit(selector.start, first.write(buffer[:, : first.n]))
+        for start, stop in zip(starts[1:], stops[1:], strict=True):
+            sol = solve(slice(start, stop))
+            if pending.result() is False:
+                alike = False
+                break
+            pending = worker.submit(select, sol, start)
+        alike = alike and pending.result() is not False
+        pct = selector.result(worker) if alike else None
     if pct is None:
         labels, values = _sampled_rows(net, factors, harmonics, locations, nominal)
         pct = row_percentiles(values, BAND_PERCENTILES)
     return labels, pct
+
+
+_blas_threads: list[ThreadpoolController] = []
+
+
+def _one_blas_thread() -> AbstractContextManager[object]:
+    """A context in which BLAS runs on the calling thread only (the controller is made once)."""
+    if not _blas_threads:
+        _blas_threads.append(ThreadpoolController())
+    return _blas_threads[0].limit(limits=1, user_api="blas")
 
 
 def _sampled_rows(net: Network, factors: NDArray[np.float64], harmonics: bool, locations: set[str] | None,

@@ -496,7 +496,13 @@ def sample_factors(net: Network, n_samples: int, seed: int) -> NDArray[np.float6
     """Uniform tolerance factors (n_samples, n_params) in [1 - tol, 1 + tol], seeded."""
     rng = np.random.default_rng(seed)
     tol = np.array([p[3] for p in net.parameters])
-    return 1.0 + rng.uniform(-1.0, 1.0, size=(n_samples, len(tol))) * tol[None, :]
+    # in place, and the same numbers as 1 + uniform(-1, 1) * tol: uniform draws -1 + 2 * random()
+    out = rng.random((n_samples, len(tol)))
+    out *= 2.0
+    out -= 1.0
+    out *= tol
+    out += 1.0
+    return out
 
 
 def element_node_current_into(sol: Solution, element_index: int, node: int) -> NDArray[np.complex128]:
