@@ -183,6 +183,15 @@ def test_tolerance_band_contains_nominal_and_is_reproducible(demo: Bench) -> Non
     assert a.band_high[k] - a.band_low[k] > 0.01 * a.nominal[k]  # a 5 % component tolerance shows
 
 
+def test_tolerance_factors_are_numpys_seeded_uniform_draws(demo: Bench) -> None:
+    # a recorded seed keeps its samples: numpy's Generator.uniform(-1, 1) scaled by each tolerance
+    template = load_template(ROOT / "lab1-line-and-loads.toml", demo).template
+    net = compile_network(demo, states_after_steps(demo, template)[4])
+    tol = np.array([p[3] for p in net.parameters])
+    expected = 1.0 + np.random.default_rng(23).uniform(-1.0, 1.0, size=(300, tol.size)) * tol
+    np.testing.assert_array_equal(sample_factors(net, 300, seed=23), expected)
+
+
 def test_monte_carlo_stack_equals_one_by_one(demo: Bench) -> None:
     template = load_template(ROOT / "lab2-synchronize.toml", demo).template
     state = states_after_steps(demo, template)[-1]

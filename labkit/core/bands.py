@@ -161,12 +161,11 @@ class StreamingPercentiles:
         out = np.full((len(self.percentiles), self.n_rows), np.nan)
         whole = self._whole
         streamed = ~whole
-        high = None
-        if streamed.any() and pool is not None:
-            high = pool.submit(self._tail_percentiles, 1, streamed, out)
-        decided = not streamed.any() or self._tail_percentiles(0, streamed, out)
+        decided = True
         if streamed.any():
-            decided &= high.result() if high is not None else self._tail_percentiles(1, streamed, out)
+            high = None if pool is None else pool.submit(self._tail_percentiles, 1, streamed, out)
+            decided = self._tail_percentiles(0, streamed, out)
+            decided &= self._tail_percentiles(1, streamed, out) if high is None else high.result()
         if whole.any():
             out[:, whole] = _whole_row_percentiles(self._whole_values, self.percentiles)
         return out if decided else None

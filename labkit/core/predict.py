@@ -9,6 +9,7 @@ switch changes pass through.
 
 from __future__ import annotations
 
+import functools
 from concurrent.futures import ThreadPoolExecutor
 from contextlib import AbstractContextManager
 from dataclasses import dataclass, field
@@ -170,16 +171,14 @@ def _sampled_band(net: Network, factors: NDArray[np.float64], harmonics: bool, l
 
     # a worker thread takes the quantities of one block and selects them while the next is solved
     # (numpy releases the GIL in both); one block waits at most, so memory stays bounded
-    alike = True
     with ThreadPoolExecutor(max_workers=1) as worker:
         pending = worker.submit(selector.start, first.write(buffer[:, : first.n]))
         for start, stop in zip(starts[1:], stops[1:], strict=True):
             sol = solve(slice(start, stop))
             if pending.result() is False:
-                alike = False
                 break
             pending = worker.submit(select, sol, start)
-        alike = alike and pending.result() is not False
+        alike = pending.result() is not False  # False: a block's rows differed from the first block's
         pct = selector.result(worker) if alike else None
     if pct is None:
         labels, values = _sampled_rows(net, factors, harmonics, locations, nominal)
@@ -187,14 +186,14 @@ def _sampled_band(net: Network, factors: NDArray[np.float64], harmonics: bool, l
     return labels, pct
 
 
-_blas_threads: list[ThreadpoolController] = []
+@functools.cache
+def _blas_controller() -> ThreadpoolController:
+    return ThreadpoolController()  # finds the loaded BLAS libraries once (about a millisecond)
 
 
 def _one_blas_thread() -> AbstractContextManager[object]:
-    """A context in which BLAS runs on the calling thread only (the controller is made once)."""
-    if not _blas_threads:
-        _blas_threads.append(ThreadpoolController())
-    return _blas_threads[0].limit(limits=1, user_api="blas")
+    """A context in which BLAS runs on the calling thread only."""
+    return _blas_controller().limit(limits=1, user_api="blas")
 
 
 def _sampled_rows(net: Network, factors: NDArray[np.float64], harmonics: bool, locations: set[str] | None,

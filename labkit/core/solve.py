@@ -223,7 +223,7 @@ def _currents(arr_a: NDArray, arr_b: NDArray, v: NDArray, y_el: NDArray) -> NDAr
     incidence[elements[arr_a >= 0], arr_a[arr_a >= 0]] = 1.0
     incidence[elements[arr_b >= 0], arr_b[arr_b >= 0]] -= 1.0
     # element-major (E, S), as the stacked admittances and voltages are laid out: no transposing copies
-    across = (incidence @ v.T).astype(complex, copy=False) if v.shape[0] > 1 else (v @ incidence.T).T
+    across = incidence @ v.T
     bad = ~np.isfinite(v).all(axis=1)
     if bad.any():
         v_ext = np.zeros((int(bad.sum()), n_nodes + 1), dtype=complex)
