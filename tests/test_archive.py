@@ -12,7 +12,7 @@ Outside references:
 from __future__ import annotations
 
 import hashlib
-import os
+import random
 import sqlite3
 import zlib
 from datetime import UTC, datetime, timedelta
@@ -521,15 +521,17 @@ def test_foreign_file_is_a_clear_error(tmp_path: Path) -> None:
         SQLiteArchive(plain)
 
 
-def test_corrupt_pages_are_found(tmp_path: Path) -> None:
+@pytest.mark.parametrize("seed", [1, 2, 3, 4])
+def test_corrupt_pages_are_found(tmp_path: Path, seed: int) -> None:
     good, bad = tmp_path / "good.sqlite", tmp_path / "bad.sqlite"
     _filled(good)
     _filled(bad)
     before = hashlib.sha256(good.read_bytes()).hexdigest()
     data = bytearray(bad.read_bytes())
     page = int.from_bytes(data[16:18], "big")
+    scribble = random.Random(seed)  # seeded: a failure can be replayed
     for k in range(page * 4, len(data) - page, page * 3):  # scribble over the middle of several pages
-        data[k + 8: k + 200] = os.urandom(192)
+        data[k + 8: k + 200] = scribble.randbytes(192)
     bad.write_bytes(bytes(data))
     problems: list[str] = []
     try:
@@ -544,6 +546,28 @@ def test_corrupt_pages_are_found(tmp_path: Path) -> None:
     with SQLiteArchive(good) as other:
         assert other.check() == []
     assert hashlib.sha256(good.read_bytes()).hexdigest() == before or _raw_count(good) == 300
+
+
+@pytest.mark.parametrize("table", ["meta", "readings", "sqlite_master"])
+def test_stored_text_that_is_not_utf8_is_a_clear_error(tmp_path: Path, table: str) -> None:
+    # damaged pages can hold bytes that are not UTF-8 where SQLite keeps text: Python's sqlite3 fails on
+    # such a value, or (UnicodeDecodeError) on an error message quoting a garbled schema entry's name;
+    # either must come out as the archive's own error naming the file
+    path = tmp_path / "garbled.sqlite"
+    _filled(path, 5)
+    with sqlite3.connect(path) as conn:
+        if table == "meta":
+            conn.execute("UPDATE meta SET value = CAST(x'ff85' AS TEXT) WHERE key = 'format_version'")
+        elif table == "sqlite_master":
+            conn.execute("PRAGMA writable_schema = ON")
+            conn.execute("UPDATE sqlite_master SET name = CAST(x'ff85' AS TEXT), sql = 'CREATE INDEX '"
+                         " || CAST(x'ff85' AS TEXT) || ' ON nowhere (x) garbage' WHERE type = 'index'")
+        else:
+            conn.execute("DROP TRIGGER readings_no_update")
+            conn.execute("UPDATE readings SET note = CAST(x'ff85' AS TEXT) WHERE rowid = 3")
+    with pytest.raises(ArchiveError, match=r"garbled\.sqlite.*corrupt \(stored text that is not UTF-8\)"), \
+            SQLiteArchive(path) as archive:
+        archive.readings()
 
 
 def test_check_finds_a_row_edited_behind_the_archive(tmp_path: Path) -> None:

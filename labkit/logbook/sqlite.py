@@ -62,8 +62,14 @@ def _is_busy(exc: BaseException) -> bool:
     return "locked" in text or "busy" in text
 
 
+UNREADABLE = (sqlite3.DatabaseError, UnicodeDecodeError)
+"""What reading a damaged file raises: SQLite's errors, or text in a damaged page that is not UTF-8."""
+
+
 def _reason(exc: BaseException, lock_wait: float) -> str:
     """A sentence saying what went wrong, from the SQLite error code."""
+    if isinstance(exc, UnicodeDecodeError) or "could not decode to utf-8" in str(exc).lower():
+        return "the archive file is corrupt (stored text that is not UTF-8)"
     name = _errorname(exc)
     if name.startswith("SQLITE_FULL") or "full" in str(exc).lower():
         return "the disk (or the archive's size limit) is full"
@@ -212,7 +218,7 @@ class SQLiteArchive:
             if max_page_count is not None:
                 self._conn.execute(f"PRAGMA max_page_count = {int(max_page_count)}")
             self.format_version = self._open_layout()
-        except sqlite3.DatabaseError as exc:
+        except UNREADABLE as exc:
             self.close()
             msg = f"{self.path}: cannot open the archive: {_reason(exc, self.lock_wait)} ({exc})"
             raise ArchiveError(msg) from exc
@@ -334,7 +340,7 @@ class SQLiteArchive:
     def _read(self, sql: str, params: Sequence[Any] = ()) -> list[tuple[Any, ...]]:
         try:
             return self._retry_read(lambda c: c.execute(sql, params).fetchall())
-        except sqlite3.DatabaseError as exc:
+        except UNREADABLE as exc:
             msg = f"{self.path}: cannot read the archive: {_reason(exc, self.lock_wait)} ({exc})"
             raise ArchiveError(msg) from exc
 
@@ -345,7 +351,7 @@ class SQLiteArchive:
         try:
             self._retry_read(lambda c: c.execute("BEGIN DEFERRED"))
             yield conn
-        except sqlite3.DatabaseError as exc:
+        except UNREADABLE as exc:
             msg = f"{self.path}: cannot read the archive: {_reason(exc, self.lock_wait)} ({exc})"
             raise ArchiveError(msg) from exc
         finally:
