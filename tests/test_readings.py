@@ -166,25 +166,25 @@ def test_a_reversed_sensor_fault_flips_the_power(demo):
 @pytest.mark.parametrize("max_order", [3, 13, 25, 49])
 def test_predicted_crest_factors_match_a_dense_numpy_synthesis(max_order):
     # the predictions' crest factor (coarse samples refined by Newton steps) against 100 000 points per period
-    from labkit.core.results import _crest
+    from labkit.core.crest import crest_factor
 
     rng = np.random.default_rng(max_order)
     orders = [1, *range(3, max_order + 1, 2)]
     amplitude = np.array([1.0, *(rng.uniform(0.0, 0.6, len(orders) - 1) / np.arange(1, len(orders)))])
     spectra = amplitude[None, :] * np.exp(2j * np.pi * rng.random((40, len(orders))))
-    got = _crest(spectra.T[None], orders)[0]
+    got = crest_factor(spectra.T[None], orders)[0]
     expected = [_numpy_crest(orders, spectrum)[0] for spectrum in spectra]
     np.testing.assert_allclose(got, expected, rtol=1e-6)
 
 
 def test_predicted_crest_factors_of_flat_and_double_peaked_waves_stay_close():
     # random odd-harmonic spectra give flat tops and twin peaks; reference: 40,000 points per period
-    from labkit.core.results import _crest
+    from labkit.core.crest import crest_factor
 
     rng = np.random.default_rng(12)
     orders = [1, 3, 5, 7, 9]
     spectra = (rng.normal(size=(300, 5)) + 1j * rng.normal(size=(300, 5))) * np.array([1, 0.3, 0.2, 0.1, 0.05])
-    got = _crest(spectra.T[None], orders)[0]
+    got = crest_factor(spectra.T[None], orders)[0]
     theta = np.linspace(0.0, 2 * np.pi, 40_000, endpoint=False)
     wave = np.sqrt(2) * np.real(spectra @ np.exp(1j * np.outer(orders, theta)))
     expected = np.max(np.abs(wave), axis=1) / np.sqrt(np.sum(np.abs(spectra) ** 2, axis=1))
@@ -196,22 +196,22 @@ def test_predicted_crest_factors_of_flat_and_double_peaked_waves_stay_close():
 def test_crest_factors_of_tolerance_samples_from_the_points_near_the_peak(spread, monkeypatch):
     # tolerance samples scattered around twin-peaked and flat-topped waves; the points kept near the
     # mean wave's peak must give what every point gives (reference: 40,000 points per period, numpy)
-    from labkit.core import results
+    from labkit.core import crest
 
     rng = np.random.default_rng(7)
     orders = [1, 3, 5, 7, 9]
     mean = (rng.normal(size=(6, 5, 1)) + 1j * rng.normal(size=(6, 5, 1))) * np.array([1, 0.3, 0.2, 0.1, 0.05])[:, None]
     jitter = rng.uniform(-1, 1, size=(2, 6, 5, 400))
     x = mean * (1 + spread * (jitter[0] + 1j * jitter[1]))
-    points = max(results.CREST_POINTS, results.CREST_POINTS_PER_PERIOD * max(orders))
+    points = max(crest.CREST_POINTS, crest.CREST_POINTS_PER_PERIOD * max(orders))
     theta = 2 * np.pi * np.arange(points) / points
     h = np.array(orders, dtype=float)[:, None]
     basis = np.sqrt(2) * np.concatenate([np.cos(h * theta), -np.sin(h * theta)])
     parts = np.concatenate([x.real, x.imag], axis=1).swapaxes(1, 2)
-    kept = [results._crest_points(x[m], np.ascontiguousarray(parts[m]), basis).size for m in range(6)]
-    got = results._crest(x, orders)
-    monkeypatch.setattr(results, "_crest_points", lambda x, parts, basis: np.arange(basis.shape[1]))
-    every_point = results._crest(x, orders)
+    kept = [crest.sampled_points(x[m], np.ascontiguousarray(parts[m]), basis).size for m in range(6)]
+    got = crest.crest_factor(x, orders)
+    monkeypatch.setattr(crest, "sampled_points", lambda x, parts, basis: np.arange(basis.shape[1]))
+    every_point = crest.crest_factor(x, orders)
     np.testing.assert_allclose(got, every_point, rtol=1e-12)
     if spread <= 0.1:
         assert max(kept) < points  # the narrow spreads do skip points
@@ -221,3 +221,21 @@ def test_crest_factors_of_tolerance_samples_from_the_points_near_the_peak(spread
     expected = (np.max(np.abs(wave), axis=1) / np.sqrt(np.sum(np.abs(spectra) ** 2, axis=1))).reshape(6, 400)
     assert np.max(np.abs(got / expected - 1)) < 5e-4
     assert np.all(got <= expected * (1 + 1e-6))
+
+
+def test_places_with_the_same_waveform_share_one_crest_factor():
+    # the current at both ends of a series switch is one waveform (sign aside): one computation serves both,
+    # and gives what each place would give alone (reference: the place computed on its own)
+    from labkit.core import crest
+
+    rng = np.random.default_rng(5)
+    orders = [1, 3, 5]
+    x = (rng.normal(size=(4, 3, 50)) + 1j * rng.normal(size=(4, 3, 50))) * np.array([1, 0.3, 0.2])[:, None]
+    x[2] = -x[0] * (1 + 1e-15)  # the far end of a series element, reversed
+    x[3] = x[1] * 1.001  # proportional, not equal: a different place
+    assert crest.same_waveform_as(x).tolist() == [0, 1, 0, 3]
+    got = crest.crest_factor(x, orders)
+    alone = np.concatenate([crest.crest_factor(x[m : m + 1], orders) for m in range(4)])
+    np.testing.assert_allclose(got, alone, rtol=1e-12)
+    x[0, 1, 7] = np.nan  # a singular member: its place no longer matches
+    assert crest.same_waveform_as(x).tolist() == [0, 1, 2, 3]

@@ -141,8 +141,9 @@ def _sampled_band(net: Network, factors: NDArray[np.float64], harmonics: bool, l
 
     Blocks of samples are solved one after another and their rows written into one reused
     buffer (fresh memory is slow to touch); the first (short) block sets the selection's
-    thresholds, and each block's rows are selected down to the samples near each band edge,
-    on a worker thread while the next block is solved. When the selection cannot decide a
+    thresholds, and each block's rows are selected down to the samples near each band edge.
+    A worker thread computes a block's rows while this thread solves the next block and
+    selects the block before. When the selection cannot decide a
     row (a rare sample beyond a threshold, or rows that differ between blocks), every
     sample is solved again and kept (:func:`_sampled_rows`). Every block's iterations start
     from the ``nominal`` solution's operating point.
@@ -160,25 +161,35 @@ def _sampled_band(net: Network, factors: NDArray[np.float64], harmonics: bool, l
     first = collect_quantity_rows(solve(slice(0, min(head, n))), locations)
     labels, layout = first.labels, first.layout
     selector = StreamingPercentiles(first.n_rows, n, BAND_PERCENTILES)
-    buffer = np.empty((first.n_rows, max(stop - start for start, stop in zip(starts, stops, strict=True))))
+    width = max(stop - start for start, stop in zip(starts, stops, strict=True))
+    buffers = [np.empty((first.n_rows, width)) for _ in range(2)]  # one written while the other is read
 
-    def select(sol: Solution, start: int) -> bool:
+    def rows_of(sol: Solution, buffer: NDArray[np.float64]) -> NDArray[np.float64] | None:
         rows = collect_quantity_rows(sol, locations)
-        if rows.layout != layout:
-            return False
-        selector.add(rows.write(buffer[:, : rows.n]), start)
-        return True
+        return rows.write(buffer[:, : rows.n]) if rows.layout == layout else None
 
-    # a worker thread takes the quantities of one block and selects them while the next is solved
-    # (numpy releases the GIL in both); one block waits at most, so memory stays bounded
+    # a worker thread takes one block's quantities into a buffer while this thread solves the next
+    # block and selects the previous one from the other buffer (numpy releases the GIL in both)
+    alike = True
     with ThreadPoolExecutor(max_workers=1) as worker:
-        pending = worker.submit(selector.start, first.write(buffer[:, : first.n]))
-        for start, stop in zip(starts[1:], stops[1:], strict=True):
+        done: NDArray[np.float64] | None = first.write(buffers[0][:, : first.n])
+        pending = None
+        for k, (start, stop) in enumerate(zip(starts[1:], stops[1:], strict=True)):
             sol = solve(slice(start, stop))
-            if pending.result() is False:
-                break
-            pending = worker.submit(select, sol, start)
-        alike = pending.result() is not False  # False: a block's rows differed from the first block's
+            if pending is not None:
+                done = pending.result()
+                if done is None:
+                    alike = False  # a block's rows differ from the first block's
+                    break
+            pending = worker.submit(rows_of, sol, buffers[(k + 1) % 2])
+            selector.add(done, starts[k]) if k else selector.start(done)  # type: ignore[arg-type]
+        if pending is None:
+            selector.start(done)  # type: ignore[arg-type]
+        elif alike:
+            done = pending.result()
+            alike = done is not None
+            if done is not None:
+                selector.add(done, starts[-1])
         pct = selector.result(worker) if alike else None
     if pct is None:
         labels, values = _sampled_rows(net, factors, harmonics, locations, nominal)

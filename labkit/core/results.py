@@ -15,6 +15,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from labkit.core.conventions import pf_sense, wrap_deg
+from labkit.core.crest import crest_factor
 from labkit.core.locations import element_end
 from labkit.core.network import Network
 from labkit.core.quantities import quantity
@@ -138,7 +139,7 @@ def _power_rows(rows: QuantityRows, locations: list[str], v: NDArray, i: NDArray
             thd_i = np.sqrt(np.maximum(i_rms**2 - i1**2, 0)) / i1
             pf1 = np.where(np.abs(s1) > 0, s1.real / np.abs(s1), np.nan)
         names += ["thd_i", "i1_rms", "p1", "pf1", "crest_i"]
-        values += [thd_i, i1, s1.real, pf1, _crest(i, orders)]
+        values += [thd_i, i1, s1.real, pf1, crest_factor(i, orders)]
     first = s1[:, 0].copy()  # the leading or lagging sense of the first sample, named when labels are read
     notes: Notes = {"pf": lambda: [pf_sense(float(x.imag), float(x.real)) for x in first]}
     rows.add_places(locations, names, values, notes=notes)
@@ -148,110 +149,6 @@ def _power_rows(rows: QuantityRows, locations: list[str], v: NDArray, i: NDArray
 def _half_turn_positive(angle_deg: NDArray) -> NDArray:
     """An angle from ``np.angle`` in degrees, [-180, 180], on the (-180, 180] of ``wrap_deg``."""
     return np.where(angle_deg == -180.0, 180.0, angle_deg)
-
-
-CREST_POINTS = 256  # samples per fundamental period (more when the highest order needs them)
-CREST_POINTS_PER_PERIOD = 16  # at least this many samples per period of the highest order
-CREST_CHUNK = 4096  # waveforms sampled at a time: (chunk, points) stays a few MB
-
-
-def _crest(x: NDArray, orders: list[int]) -> NDArray:
-    """Crest factor of periodic signals from their RMS harmonic phasors (M, H, S) of ``orders``, over one period.
-
-    The waveform sqrt(2) Re(sum_h X_h e^(j h theta)) is sampled uniformly (``CREST_POINTS`` points, or
-    ``CREST_POINTS_PER_PERIOD`` per period of the highest order if more); from the vertex of the
-    parabola through the largest sample and its neighbours, a Newton step on the waveform's
-    derivative refines the peak. The largest value the waveform takes at any of these points is the
-    peak, so it never exceeds the true one. The RMS is sqrt(sum |X_h|^2) (Parseval).
-
-    Tolerance samples of one place are waveforms close to their mean, so only the sample points
-    where the mean waveform comes near its peak are evaluated (:func:`_crest_points`); the largest
-    sample is the same one the full set of points would give.
-    """
-    m, h, s = x.shape
-    h_arr = np.asarray(orders, dtype=float)
-    points = max(CREST_POINTS, CREST_POINTS_PER_PERIOD * max(orders))
-    theta = 2 * np.pi * np.arange(points) / points
-    # [Re X, Im X] @ sqrt(2) [cos; -sin]: all samples of a chunk of waveforms in one real matrix product
-    basis = np.sqrt(2) * np.concatenate([np.cos(h_arr[:, None] * theta), -np.sin(h_arr[:, None] * theta)])
-    parts = np.empty((m, s, 2 * h))
-    parts[..., :h] = np.swapaxes(x.real, 1, 2)
-    parts[..., h:] = np.swapaxes(x.imag, 1, 2)
-    flat = parts.reshape(m * s, 2 * h)
-    peak = np.empty(m * s)
-    at = np.empty(m * s)
-    spacing = 2 * np.pi / points
-    for place in range(m):
-        cols = _crest_points(x[place], parts[place], basis)
-        where = np.full(points, -1, dtype=np.intp)  # sample point -> its column in the product
-        where[cols] = np.arange(cols.size)
-        sub = basis[:, cols]
-        for start in range(0, s, CREST_CHUNK):
-            wave = np.abs(parts[place, start : start + CREST_CHUNK] @ sub)
-            rows = np.arange(wave.shape[0])
-            k = cols[np.argmax(wave, axis=1)]
-            y0 = wave[rows, where[k]]
-            y_left, y_right = wave[rows, where[k - 1]], wave[rows, where[(k + 1) % points]]
-            curvature = 2 * y0 - y_left - y_right
-            with np.errstate(invalid="ignore", divide="ignore"):
-                offset = np.where(curvature > 0, (y_right - y_left) / (2 * curvature), 0.0)
-            done = slice(place * s + start, place * s + start + wave.shape[0])
-            peak[done] = y0
-            at[done] = theta[k] + np.clip(np.nan_to_num(offset), -0.5, 0.5) * spacing
-    # from the parabola's vertex, a Newton step on w'(theta) = 0; every value kept is one the waveform takes
-    phasors = np.swapaxes(x, 0, 1).reshape(h, m * s)  # (H, waveforms): each order's phasors contiguous
-    terms = phasors * _powers(np.exp(1j * at), orders)  # X_h e^(j h theta) at the vertex
-    peak = np.maximum(peak, np.sqrt(2) * np.abs(terms.sum(axis=0).real))
-    d1 = -(h_arr @ terms).imag  # w' / sqrt(2)
-    d2 = -(h_arr**2 @ terms).real  # w'' / sqrt(2)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        step = np.where(d2 != 0, -d1 / d2, 0.0)
-    at += np.clip(np.nan_to_num(step), -spacing / 2, spacing / 2)
-    terms = phasors * _powers(np.exp(1j * at), orders)
-    peak = np.maximum(peak, np.sqrt(2) * np.abs(terms.sum(axis=0).real))
-    rms = np.sqrt(np.sum(flat**2, axis=1))
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return (peak / rms).reshape(m, s)
-
-
-def _crest_points(x: NDArray, parts: NDArray, basis: NDArray) -> NDArray[np.intp]:
-    """The sample points (indices into ``basis``'s columns) where waveforms (H, S) of one place can peak.
-
-    With the mean phasors as reference, a waveform differs from the reference waveform by at most
-    its deviation sqrt(2) sum_h |X_h - mean_h| at every angle; its largest sample is at least its
-    value at the reference's largest sample. So its largest sample lies where the reference is within
-    (that value - deviation) of it: those points, and their neighbours for the parabola, are kept.
-    Every point is kept when the samples are spread widely or are not finite.
-    """
-    points = basis.shape[1]
-    reference = x.mean(axis=1)
-    ref_wave = np.abs(np.concatenate([reference.real, reference.imag]) @ basis)
-    k0 = int(np.argmax(ref_wave))
-    deviation = np.sqrt(2) * np.abs(x - reference[:, None]).sum(axis=0)
-    floor = float(np.min(np.abs(parts @ basis[:, k0]) - deviation))
-    floor -= 1e-9 * float(ref_wave[k0])  # rounding of the products
-    if not np.isfinite(floor):
-        return np.arange(points)
-    near = ref_wave >= floor
-    near |= np.roll(near, 1) | np.roll(near, -1)
-    return np.flatnonzero(near)
-
-
-def _powers(z: NDArray[np.complex128], orders: list[int]) -> NDArray[np.complex128]:
-    """z**h for each of the increasing ``orders`` (H, len(z)), by multiplication rather than exp/log."""
-    out = np.empty((len(orders), z.size), dtype=complex)
-    steps: dict[int, NDArray[np.complex128]] = {}
-    previous = 0
-    for k, order in enumerate(orders):
-        gap = order - previous
-        if gap not in steps:
-            steps[gap] = z**gap
-        if k == 0:
-            out[0] = steps[gap]
-        else:
-            np.multiply(out[k - 1], steps[gap], out=out[k])
-        previous = order
-    return out
 
 
 def quantity_arrays(sol: Solution, locations: set[str] | None = None) -> tuple[list[RowLabel], NDArray[np.float64]]:
