@@ -16,7 +16,7 @@ from labkit.core.bench import AlternatorSet, Bench
 from labkit.core.network import NetworkError, compile_network
 from labkit.core.predict import predict_state
 from labkit.core.results import quantity_arrays
-from labkit.core.solve import sample_factors, solve_network, stacked_solve
+from labkit.core.solve import ToleranceDraws, sample_factors, solve_network, stacked_solve
 from labkit.core.state import BenchState, SourceSetting, states_after_steps
 from labkit.files.loader import load_bench, load_template
 from tests.network_cases import random_bench
@@ -190,6 +190,9 @@ def test_tolerance_factors_are_numpys_seeded_uniform_draws(demo: Bench) -> None:
     tol = np.array([p[3] for p in net.parameters])
     expected = 1.0 + np.random.default_rng(23).uniform(-1.0, 1.0, size=(300, tol.size)) * tol
     np.testing.assert_array_equal(sample_factors(net, 300, seed=23), expected)
+    # drawn a block at a time, as a band does while it solves: the same numbers
+    draws = ToleranceDraws(net, seed=23)
+    np.testing.assert_array_equal(np.concatenate([draws.next(k) for k in (1, 99, 200)]), expected)
 
 
 def test_monte_carlo_stack_equals_one_by_one(demo: Bench) -> None:

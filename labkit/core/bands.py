@@ -57,6 +57,7 @@ def _ranks(n: int, percentiles: tuple[float, ...]) -> tuple[NDArray[np.intp], ND
 STREAM_MIN_FIRST_BLOCK = 400
 """Fewer first-block samples than this make thresholds too loose to pay: every row is kept whole."""
 THRESHOLD_SUBSAMPLE = 512  # first-block samples the thresholds are taken from
+REACH_SHORTFALL = 1e-12  # relative: the one-pass test of both tails errs towards keeping samples
 THRESHOLD_SIGMAS = 5.0
 """How far beyond the percentile a threshold sits, in standard errors of the subsample's rank: a
 row's candidates then fall short with probability about 3e-7 (then :meth:`result` says so)."""
@@ -86,6 +87,9 @@ class StreamingPercentiles:
         self._blocks: list[tuple[int, list[tuple[NDArray[np.intp], NDArray[np.float64]]]]] = []
         self._failed = False
         self._started = False
+        self._both_tails = False
+        self._centre = self._reach = np.empty((n_rows, 1))
+        self._buffers: tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.bool_]] | None = None
 
     def start(self, block: NDArray[np.float64]) -> None:
         """The first (n_rows, b) block: thresholds from its samples, then its candidates."""
@@ -115,6 +119,10 @@ class StreamingPercentiles:
                 count = np.count_nonzero(head <= thr if tail == 0 else head >= thr, axis=1)
                 self._whole |= count > 2 * (j[tail] + 1)  # type: ignore[operator]
         self._thresholds[:, self._whole] = np.nan  # NaN thresholds select nothing
+        self._both_tails = bool(low_p and high_p)
+        low_thr, high_thr = self._thresholds
+        self._centre = (low_thr + high_thr) / 2
+        self._reach = (high_thr - low_thr) / 2 * (1 - REACH_SHORTFALL)
         self._whole_values = np.empty((int(self._whole.sum()), self.n))
         self._started = True
         self.add(block, 0)
@@ -122,7 +130,8 @@ class StreamingPercentiles:
     def add(self, block: NDArray[np.float64], offset: int) -> None:
         """A later (n_rows, b) block whose samples are numbers ``offset`` to ``offset + b - 1``.
 
-        The block is read, not kept: its buffer may be reused afterwards.
+        The block is read, not kept: its buffer may be reused afterwards. Not for two threads
+        at once (the selection's work arrays are reused).
         """
         if not self._started:
             msg = "the first block goes to start()"
@@ -140,12 +149,33 @@ class StreamingPercentiles:
                 return
             flat = np.ascontiguousarray(block)
             bounds = np.arange(self.n_rows + 1) * b
-            for tail in (0, 1):
-                mask = flat <= self._thresholds[0] if tail == 0 else flat >= self._thresholds[1]
-                at = np.flatnonzero(mask)  # row-major: grouped by row
+            if self._both_tails:
+                # one pass finds both tails' samples: |x - centre| >= reach, from the centre and half-width
+                # of the thresholds (the reach a little short, so rounding only adds samples); the sign of
+                # x - centre then tells the tails apart. For each tail this keeps all the samples beyond
+                # some value, so the order statistics found are the exact ones.
+                signed, distance, beyond = self._scratch(flat.shape)
+                np.subtract(flat, self._centre, out=signed)
+                np.abs(signed, out=distance)
+                at = np.flatnonzero(np.greater_equal(distance, self._reach, out=beyond))  # row-major
                 values = flat.ravel()[at]
-                tails.append((np.diff(np.searchsorted(at, bounds)), values if tail == 0 else -values))
+                low = signed.ravel()[at] < 0
+                per_row = np.searchsorted(at, bounds)  # each row's run of candidates
+                low_counts = np.diff(np.concatenate([[0], np.cumsum(low)])[per_row])
+                tails.append((low_counts, values[low]))
+                tails.append((np.diff(per_row) - low_counts, -values[~low]))
+            else:
+                for tail in (0, 1):
+                    at = np.flatnonzero(flat <= self._thresholds[0] if tail == 0 else flat >= self._thresholds[1])
+                    values = flat.ravel()[at]
+                    tails.append((np.diff(np.searchsorted(at, bounds)), values if tail == 0 else -values))
         self._blocks.append((b, tails))
+
+    def _scratch(self, shape: tuple[int, ...]) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.bool_]]:
+        """Work arrays of a block's shape, kept for the next block (fresh memory is slow to touch)."""
+        if self._buffers is None or self._buffers[0].shape != shape:
+            self._buffers = (np.empty(shape), np.empty(shape), np.empty(shape, dtype=bool))
+        return self._buffers
 
     def result(self, pool: Executor | None = None) -> NDArray[np.float64] | None:
         """(len(percentiles), n_rows), or None when the candidates do not determine some row.

@@ -24,7 +24,7 @@ from labkit.core.defaults import BAND_PERCENTILES, DEFAULT_SAMPLES, DEFAULT_SEED
 from labkit.core.errors import LabkitError
 from labkit.core.network import Network, NetworkError, compile_network
 from labkit.core.results import RowLabel, collect_quantity_rows, quantity_arrays
-from labkit.core.solve import Solution, sample_factors, solve_network, thevenin_impedance
+from labkit.core.solve import Solution, ToleranceDraws, sample_factors, solve_network, thevenin_impedance
 from labkit.core.state import BenchState, apply_step, initial_state, intermediate_states
 from labkit.core.template import SessionTemplate
 
@@ -103,7 +103,7 @@ def predict_state(bench: Bench, state: BenchState, *, n_samples: int = DEFAULT_S
         sol = solve_network(net, harmonics=harmonics)
         labels, nominal = quantity_arrays(sol)
         if n_samples > 0 and net.parameters:
-            labels_mc, pct = _sampled_band(net, sample_factors(net, n_samples, seed), harmonics, band_locations, sol)
+            labels_mc, pct = _sampled_band(net, n_samples, seed, harmonics, band_locations, sol)
     low, high = nominal[0].copy(), nominal[0].copy()
     if n_samples > 0 and net.parameters:
         index = {(lab.location, lab.quantity): k for k, lab in enumerate(labels)}
@@ -135,9 +135,9 @@ def _block_samples(net: Network) -> int:
     return min(max(BAND_BLOCK // max(len(net.elements), 1), 64), BAND_BLOCK_MAX_SAMPLES)
 
 
-def _sampled_band(net: Network, factors: NDArray[np.float64], harmonics: bool, locations: set[str] | None,
+def _sampled_band(net: Network, n: int, seed: int, harmonics: bool, locations: set[str] | None,
                   nominal: Solution | None = None) -> tuple[list[RowLabel], NDArray[np.float64]]:
-    """Labels and band percentiles (2, rows) of every predicted quantity over the tolerance samples.
+    """Labels and band percentiles (2, rows) of every predicted quantity over ``n`` tolerance samples.
 
     Blocks of samples are solved one after another and their rows written into one reused
     buffer (fresh memory is slow to touch); the first (short) block sets the selection's
@@ -146,17 +146,19 @@ def _sampled_band(net: Network, factors: NDArray[np.float64], harmonics: bool, l
     selects the block before. When the selection cannot decide a
     row (a rare sample beyond a threshold, or rows that differ between blocks), every
     sample is solved again and kept (:func:`_sampled_rows`). Every block's iterations start
-    from the ``nominal`` solution's operating point.
+    from the ``nominal`` solution's operating point. Each block's tolerance factors are drawn
+    as it is solved (the numbers of :func:`~labkit.core.solve.sample_factors` with ``seed``).
     """
-    n = factors.shape[0]
+    draws = ToleranceDraws(net, seed)
     step = _block_samples(net)
     # a short first block: its samples set the thresholds, and nothing overlaps its solve
     head = min(THRESHOLD_SUBSAMPLE, step) if n > 2 * THRESHOLD_SUBSAMPLE else step
     starts = [0, *range(head, n, step)]
     stops = [*starts[1:], n]
 
-    def solve(block: slice) -> Solution:
-        return solve_network(net, factors[block], harmonics=harmonics, warm_start=nominal)
+    def solve(block: slice) -> Solution:  # blocks come in order
+        factors = draws.next(block.stop - block.start)
+        return solve_network(net, factors, harmonics=harmonics, warm_start=nominal)
 
     first = collect_quantity_rows(solve(slice(0, min(head, n))), locations)
     labels, layout = first.labels, first.layout
@@ -192,7 +194,7 @@ def _sampled_band(net: Network, factors: NDArray[np.float64], harmonics: bool, l
                 selector.add(done, starts[-1])
         pct = selector.result(worker) if alike else None
     if pct is None:
-        labels, values = _sampled_rows(net, factors, harmonics, locations, nominal)
+        labels, values = _sampled_rows(net, sample_factors(net, n, seed), harmonics, locations, nominal)
         pct = row_percentiles(values, BAND_PERCENTILES)
     return labels, pct
 

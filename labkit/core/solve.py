@@ -421,6 +421,8 @@ def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, h
 def _sample_last(per_order: list[NDArray[np.complex128]]) -> NDArray[np.complex128]:
     """(S, H, X) from one (S, X) array per order, stored (X, H, S): every place's samples contiguous,
     the layout the readings are computed in (:mod:`labkit.core.results`), so they need no copy."""
+    if len(per_order) == 1 and per_order[0].T.flags.c_contiguous:
+        return per_order[0].T[:, None, :].transpose(2, 1, 0)  # already place-major: a view
     out = np.empty((per_order[0].shape[1], len(per_order), per_order[0].shape[0]), dtype=complex)
     for k, x in enumerate(per_order):
         out[:, k] = x.T
@@ -494,15 +496,26 @@ def _solve_harmonics(net: Network, v1: NDArray, i1: NDArray, f_node: NDArray,
 
 def sample_factors(net: Network, n_samples: int, seed: int) -> NDArray[np.float64]:
     """Uniform tolerance factors (n_samples, n_params) in [1 - tol, 1 + tol], seeded."""
-    rng = np.random.default_rng(seed)
-    tol = np.array([p[3] for p in net.parameters])
-    # in place, and the same numbers as 1 + uniform(-1, 1) * tol: uniform draws -1 + 2 * random()
-    out = rng.random((n_samples, len(tol)))
-    out *= 2.0
-    out -= 1.0
-    out *= tol
-    out += 1.0
-    return out
+    return ToleranceDraws(net, seed).next(n_samples)
+
+
+class ToleranceDraws:
+    """Seeded tolerance factors drawn a block at a time, in order: the blocks, stacked, are the
+    same numbers as :func:`sample_factors` with that seed (numpy's generator fills them in turn)."""
+
+    def __init__(self, net: Network, seed: int) -> None:
+        self._rng = np.random.default_rng(seed)
+        self._tol = np.array([p[3] for p in net.parameters])
+
+    def next(self, n_samples: int) -> NDArray[np.float64]:
+        """The next ``n_samples`` samples' factors (n_samples, n_params)."""
+        # in place, and the same numbers as 1 + uniform(-1, 1) * tol: uniform draws -1 + 2 * random()
+        out = self._rng.random((n_samples, self._tol.size))
+        out *= 2.0
+        out -= 1.0
+        out *= self._tol
+        out += 1.0
+        return out
 
 
 def element_node_current_into(sol: Solution, element_index: int, node: int) -> NDArray[np.complex128]:
@@ -512,7 +525,7 @@ def element_node_current_into(sol: Solution, element_index: int, node: int) -> N
     return i if e.node_a == node else -i if e.node_b == node else np.zeros_like(i)
 
 
-__all__ = ["NEUTRAL", "Solution", "sample_factors", "solve_network", "stacked_solve"]
+__all__ = ["NEUTRAL", "Solution", "ToleranceDraws", "sample_factors", "solve_network", "stacked_solve"]
 
 
 @dataclass
