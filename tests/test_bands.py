@@ -47,6 +47,7 @@ def _mixed_rows(rng: np.random.Generator, n: int) -> np.ndarray:
         -rng.exponential(1.0, n),                  # skewed toward the low tail
         rng.normal(0.0, 1e-12, n),                 # tiny values
         np.where(rng.random(n) < 0.5, 1.0, 2.0),   # two levels only
+        rng.normal(1e6, 1e-7, n),                  # a spread of a few hundred rounding steps of its value
     ])
 
 

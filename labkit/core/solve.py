@@ -359,7 +359,14 @@ def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, h
                 ratio = ld.rated_voltage**2 / max(abs(warm_start.v[0, 0, e.node_a]) ** 2, 1e-12)
                 y_nl[:, j] = y_fixed[:, j] * (ratio - 1.0)
     converged, n_iter = True, 0
-    for _outer in range(40 if nl_elems else 1):
+    by_compensation = (not n_x and nl_elems and s >= REDUCE_MIN_STACK
+                       and all(e.node_b == NEUTRAL for _, e in nl_elems)
+                       and len({e.node_a for _, e in nl_elems}) == len(nl_elems))
+    if by_compensation:  # the nonlinear loads' fixed point on their buses alone (the same iterates)
+        assert y_nl is not None
+        assert y_fixed is not None
+        result = _nonlinear_by_compensation(net, factors, evaluate(x, None), nl_elems, y_nl, y_fixed)
+    for _outer in range(0 if by_compensation else 40 if nl_elems else 1):
         if n_x:
             converged = False
             for n_iter in range(1, MAX_NEWTON + 1):  # noqa: B007
@@ -400,7 +407,10 @@ def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, h
         warnings.append(f"source-role iteration did not converge in {MAX_NEWTON} steps")
     seen = last.get("at")
     reuse = converged and seen is not None and seen[0] is x and seen[1] is y_nl
-    v, y_el, fn, emf, _, failed = seen[2] if reuse else evaluate(x, y_nl)  # type: ignore[index]
+    if by_compensation:
+        v, y_el, fn, emf, _, failed = result
+    else:
+        v, y_el, fn, emf, _, failed = seen[2] if reuse else evaluate(x, y_nl)  # type: ignore[index]
     i_el = _currents(arr["a"], arr["b"], v, y_el)
     i_src = (emf - v[:, src_nodes]) * y_el[:, [r.element_index for r in net.sources]] if n_src else np.zeros((s, 0))
 
@@ -416,6 +426,64 @@ def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, h
         warnings.append(f"{int(np.sum(failed))} stacked member(s) had a singular admittance matrix")
     return Solution(net, orders, _sample_last(v_all), _sample_last(i_all), emf, fn, _sample_last(isrc_all),
                     converged, n_iter, warnings, failed)
+
+
+NONLINEAR_TOL = 1e-12  # change of the nonlinear loads' equivalent admittances (S) between iterates
+
+
+def _nonlinear_by_compensation(net: Network, factors: NDArray | None, base: tuple, nl_elems: list,
+                               y_nl: NDArray[np.complex128], y_fixed: NDArray[np.complex128]) -> tuple:
+    """The nonlinear loads' fixed point by the compensation theorem, for sources of fixed EMF.
+
+    ``base`` is the network solved with each nonlinear load at its compiled admittance. With
+    Z (S, k, k) the network's impedances between the k loads' buses (one solve per bus, EMFs
+    shorted), extra admittances dY at those buses give bus voltages u = (I + Z dY)^-1 u0, so
+    the iteration of :func:`solve_network` (each load's admittance from its fundamental power
+    at its bus voltage, until the admittances change by less than ``NONLINEAR_TOL``) runs on the
+    k buses only, and the node voltages follow as v = v0 - sum_j x_j dY_j u_j, where x_j is the
+    response to a unit current into bus j. Returns what ``evaluate`` returns.
+    """
+    v0, y_base, fn, emf, p_emf, failed = base
+    arr = net.element_arrays()
+    columns = [j for j, _ in nl_elems]
+    nodes = np.array([e.node_a for _, e in nl_elems], dtype=np.intp)
+    if np.all(fn == fn[:, :1]):
+        omega = 2 * np.pi * fn[:, :1]
+    else:
+        omega = 2 * np.pi * fn[:, np.where(arr["a"] >= 0, arr["a"], arr["b"])]
+    y_el = net.element_model().admittances(factors, omega)
+    s, k = v0.shape[0], nodes.size
+    plan = plan_elimination(net.n_nodes, arr["a"], arr["b"], nodes)
+    responses = []
+    for node in nodes:  # a unit current into each load's bus, every EMF shorted
+        unit = np.zeros((s, net.n_nodes), dtype=complex)
+        unit[:, node] = 1.0
+        x, bad = reduced_solve(plan, y_el, unit)
+        responses.append(x)
+        failed = failed | bad
+    z = np.stack([x[:, nodes] for x in responses], axis=2)  # (S, k, k): z[:, i, j] = response at i to j
+    u0 = v0[:, nodes]
+    rated = np.array([net.bench.load(e.owner).rated_voltage for _, e in nl_elems]) ** 2
+    fixed = y_fixed[:, columns]
+    dy = y_nl[:, columns]
+    eye = np.eye(k)
+    for _ in range(40):
+        u = u0 / (1 + z[:, 0, 0] * dy[:, 0])[:, None] if k == 1 else np.linalg.solve(
+            eye + z * dy[:, None, :], u0[..., None])[..., 0]
+        # constant fundamental power: Y = conj(S1) / |V|^2, the compiled Y is at rated voltage
+        dy_new = fixed * (rated / np.maximum(np.abs(u) ** 2, 1e-12) - 1.0)
+        change = np.max(np.abs(dy_new - dy)) if dy.size else 0.0
+        dy = dy_new
+        if change < NONLINEAR_TOL:
+            break
+    u = u0 / (1 + z[:, 0, 0] * dy[:, 0])[:, None] if k == 1 else np.linalg.solve(
+        eye + z * dy[:, None, :], u0[..., None])[..., 0]
+    v = v0.T.copy()  # node-major, as the linear solves give it
+    for j, x in enumerate(responses):
+        v -= x.T * (dy[:, j] * u[:, j])
+    y_total = y_base.copy()
+    y_total[:, columns] += dy
+    return v.T, y_total, fn, emf, p_emf, failed
 
 
 def _sample_last(per_order: list[NDArray[np.complex128]]) -> NDArray[np.complex128]:
