@@ -359,7 +359,7 @@ def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, h
                 ratio = ld.rated_voltage**2 / max(abs(warm_start.v[0, 0, e.node_a]) ** 2, 1e-12)
                 y_nl[:, j] = y_fixed[:, j] * (ratio - 1.0)
     converged, n_iter = True, 0
-    by_compensation = (not n_x and nl_elems and s >= REDUCE_MIN_STACK
+    by_compensation = (NONLINEAR_BY_COMPENSATION and not n_x and nl_elems
                        and all(e.node_b == NEUTRAL for _, e in nl_elems)
                        and len({e.node_a for _, e in nl_elems}) == len(nl_elems))
     if by_compensation:  # the nonlinear loads' fixed point on their buses alone (the same iterates)
@@ -429,11 +429,15 @@ def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, h
 
 
 NONLINEAR_TOL = 1e-12  # change of the nonlinear loads' equivalent admittances (S) between iterates
+NONLINEAR_BY_COMPENSATION = True
+"""Where it applies, iterate the nonlinear loads on their buses alone (False: re-solve the whole
+network at every iterate, the general path, kept as the reference)."""
 
 
 def _nonlinear_by_compensation(net: Network, factors: NDArray | None, base: tuple, nl_elems: list,
                                y_nl: NDArray[np.complex128], y_fixed: NDArray[np.complex128]) -> tuple:
-    """The nonlinear loads' fixed point by the compensation theorem, for sources of fixed EMF.
+    """The nonlinear loads' fixed point by the compensation theorem, for sources of fixed EMF (no
+    source-role unknowns), on buses of their own, each load between its bus and neutral.
 
     ``base`` is the network solved with each nonlinear load at its compiled admittance. With
     Z (S, k, k) the network's impedances between the k loads' buses (one solve per bus, EMFs
@@ -453,12 +457,16 @@ def _nonlinear_by_compensation(net: Network, factors: NDArray | None, base: tupl
         omega = 2 * np.pi * fn[:, np.where(arr["a"] >= 0, arr["a"], arr["b"])]
     y_el = net.element_model().admittances(factors, omega)
     s, k = v0.shape[0], nodes.size
-    plan = plan_elimination(net.n_nodes, arr["a"], arr["b"], nodes)
+    if y_el.shape[0] != s:  # nominal elements shared by a stack of EMFs or frequencies
+        y_el = np.broadcast_to(y_el, (s, y_el.shape[1])).copy()
+    tall = s >= REDUCE_MIN_STACK
+    plan = plan_elimination(net.n_nodes, arr["a"], arr["b"], nodes) if tall else None
+    matrix = None if tall else assemble(net.n_nodes, arr["a"], arr["b"], y_el)
     responses = []
     for node in nodes:  # a unit current into each load's bus, every EMF shorted
         unit = np.zeros((s, net.n_nodes), dtype=complex)
         unit[:, node] = 1.0
-        x, bad = reduced_solve(plan, y_el, unit)
+        x, bad = reduced_solve(plan, y_el, unit) if plan is not None else stacked_solve(matrix, unit)  # type: ignore[arg-type]
         responses.append(x)
         failed = failed | bad
     z = np.stack([x[:, nodes] for x in responses], axis=2)  # (S, k, k): z[:, i, j] = response at i to j
