@@ -139,13 +139,13 @@ def _sampled_band(net: Network, n: int, seed: int, harmonics: bool, locations: s
                   nominal: Solution | None = None) -> tuple[list[RowLabel], NDArray[np.float64]]:
     """Labels and band percentiles (2, rows) of every predicted quantity over ``n`` tolerance samples.
 
-    Blocks of samples are solved one after another and their rows written into one reused
-    buffer (fresh memory is slow to touch); the first (short) block sets the selection's
+    Blocks of samples are solved one after another and their rows written into two reused
+    buffers (fresh memory is slow to touch); the first (short) block sets the selection's
     thresholds, and each block's rows are selected down to the samples near each band edge.
     A worker thread computes a block's rows while this thread solves the next block and
-    selects the block before. When the selection cannot decide a
-    row (a rare sample beyond a threshold, or rows that differ between blocks), every
-    sample is solved again and kept (:func:`_sampled_rows`). Every block's iterations start
+    selects the block before. When the selection cannot decide a row (a rare sample beyond a
+    threshold, or rows that differ between blocks), every sample is solved again and kept
+    (:func:`_sampled_rows`). Every block's iterations start
     from the ``nominal`` solution's operating point. Each block's tolerance factors are drawn
     as it is solved (the numbers of :func:`~labkit.core.solve.sample_factors` with ``seed``).
     """

@@ -365,7 +365,7 @@ def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, h
     if by_compensation:  # the nonlinear loads' fixed point on their buses alone (the same iterates)
         assert y_nl is not None
         assert y_fixed is not None
-        result = _nonlinear_by_compensation(net, factors, evaluate(x, None), nl_elems, y_nl, y_fixed)
+        result = _nonlinear_by_compensation(net, evaluate(x, None), nl_elems, y_nl, y_fixed)
     for _outer in range(0 if by_compensation else 40 if nl_elems else 1):
         if n_x:
             converged = False
@@ -434,8 +434,8 @@ NONLINEAR_BY_COMPENSATION = True
 network at every iterate, the general path, kept as the reference)."""
 
 
-def _nonlinear_by_compensation(net: Network, factors: NDArray | None, base: tuple, nl_elems: list,
-                               y_nl: NDArray[np.complex128], y_fixed: NDArray[np.complex128]) -> tuple:
+def _nonlinear_by_compensation(net: Network, base: tuple, nl_elems: list, y_nl: NDArray[np.complex128],
+                               y_fixed: NDArray[np.complex128]) -> tuple:
     """The nonlinear loads' fixed point by the compensation theorem, for sources of fixed EMF (no
     source-role unknowns), on buses of their own, each load between its bus and neutral.
 
@@ -447,18 +447,11 @@ def _nonlinear_by_compensation(net: Network, factors: NDArray | None, base: tupl
     k buses only, and the node voltages follow as v = v0 - sum_j x_j dY_j u_j, where x_j is the
     response to a unit current into bus j. Returns what ``evaluate`` returns.
     """
-    v0, y_base, fn, emf, p_emf, failed = base
+    v0, y_el, fn, emf, p_emf, failed = base
     arr = net.element_arrays()
     columns = [j for j, _ in nl_elems]
     nodes = np.array([e.node_a for _, e in nl_elems], dtype=np.intp)
-    if np.all(fn == fn[:, :1]):
-        omega = 2 * np.pi * fn[:, :1]
-    else:
-        omega = 2 * np.pi * fn[:, np.where(arr["a"] >= 0, arr["a"], arr["b"])]
-    y_el = net.element_model().admittances(factors, omega)
     s, k = v0.shape[0], nodes.size
-    if y_el.shape[0] != s:  # nominal elements shared by a stack of EMFs or frequencies
-        y_el = np.broadcast_to(y_el, (s, y_el.shape[1])).copy()
     tall = s >= REDUCE_MIN_STACK
     plan = plan_elimination(net.n_nodes, arr["a"], arr["b"], nodes) if tall else None
     matrix = None if tall else assemble(net.n_nodes, arr["a"], arr["b"], y_el)
@@ -489,7 +482,7 @@ def _nonlinear_by_compensation(net: Network, factors: NDArray | None, base: tupl
     v = v0.T.copy()  # node-major, as the linear solves give it
     for j, x in enumerate(responses):
         v -= x.T * (dy[:, j] * u[:, j])
-    y_total = y_base.copy()
+    y_total = y_el.copy()
     y_total[:, columns] += dy
     return v.T, y_total, fn, emf, p_emf, failed
 
