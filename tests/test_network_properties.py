@@ -371,3 +371,25 @@ def test_nonlinear_loads_take_their_power_in_every_sample_by_compensation(demo: 
     np.testing.assert_allclose(sol.i_elem, full.i_elem, rtol=0, atol=1e-10 * np.max(np.abs(full.i_elem)))
     reference = solve_network(net)
     np.testing.assert_allclose(nominal.v, reference.v, rtol=0, atol=1e-10 * scale)
+
+
+def test_phase_from_the_two_angles_is_the_angle_of_i_conj_v() -> None:
+    # the phase of a current against its voltage, taken as the difference of the phasors' angles, against
+    # numpy's angle of i conj(v) directly; the whole circle, the +-180 deg seam, zero current and zero voltage
+    from labkit.core.results import phase_deg
+
+    rng = np.random.default_rng(4)
+    v = rng.normal(size=2000) + 1j * rng.normal(size=2000)
+    i = rng.normal(size=2000) + 1j * rng.normal(size=2000)
+    i[:50] = -v[:50] * rng.uniform(0.1, 2.0, 50)  # exactly reversed: 180 deg
+    i[50:60] = 0.0
+    v[60:70] = 0.0
+    s1 = v * np.conj(i)
+    got = phase_deg(np.degrees(np.angle(i)), np.degrees(np.angle(v)), s1)
+    expected = np.degrees(np.angle(i * np.conj(v)))
+    expected = np.where(expected == -180.0, 180.0, expected)  # on (-180, 180]
+    diff = (got - expected + 180.0) % 360.0 - 180.0  # a value at the seam may land on either side of it
+    some = s1 != 0  # numpy's angle of a zero product is 0 or 180 by the signs of its zeros: not compared
+    np.testing.assert_allclose(diff[some], 0.0, atol=1e-12)
+    assert np.all((got > -180.0) & (got <= 180.0))
+    assert np.all(got[50:70] == 0.0)

@@ -117,10 +117,12 @@ def _rms(x: NDArray) -> NDArray:
 
 
 def _power_rows(rows: QuantityRows, locations: list[str], v: NDArray, i: NDArray,
-                orders: list[int]) -> dict[str, NDArray]:
+                orders: list[int], v_angle: NDArray | None = None) -> dict[str, NDArray]:
     """v, i: (M, H, S) phasors at M places (currents in each place's reference direction), one pass for all.
 
-    Returns the (M, S) arrays of ``p`` and ``q1`` (in W and var) for the line-loss rows.
+    ``v_angle``: the angles (deg, from ``np.angle``) of ``v``'s fundamental, when already known
+    (places at one bus share them). Returns the (M, S) arrays of ``p`` and ``q1`` (in W and var)
+    for the line-loss rows.
     """
     v_rms, i_rms = _rms(v), _rms(i)
     s1 = v[:, 0] * np.conj(i[:, 0])
@@ -128,9 +130,9 @@ def _power_rows(rows: QuantityRows, locations: list[str], v: NDArray, i: NDArray
     s = v_rms * i_rms
     with np.errstate(invalid="ignore", divide="ignore"):
         pf = np.where(s > 0, p / s, np.nan)
-    # the angle of i conj(v) is minus that of s1 (atan2 is odd in its first argument)
-    phase = _half_turn_positive(np.degrees(-np.angle(s1)))
-    i_angle = _half_turn_positive(np.degrees(np.angle(i[:, 0])))
+    i_angle = np.degrees(np.angle(i[:, 0]))
+    phase = phase_deg(i_angle, np.degrees(np.angle(v[:, 0])) if v_angle is None else v_angle, s1)
+    i_angle = _half_turn_positive(i_angle)
     names = ["i_rms", "i_angle", "p", "q1", "s", "pf", "phase"]
     values = [i_rms, i_angle, p, s1.imag, s, pf, phase]
     if len(orders) > 1:
@@ -144,6 +146,18 @@ def _power_rows(rows: QuantityRows, locations: list[str], v: NDArray, i: NDArray
     notes: Notes = {"pf": lambda: [pf_sense(float(x.imag), float(x.real)) for x in first]}
     rows.add_places(locations, names, values, notes=notes)
     return {"p": p, "q1": s1.imag}
+
+
+def phase_deg(i_angle: NDArray, v_angle: NDArray, s1: NDArray) -> NDArray:
+    """The phase angle (deg, on (-180, 180]) of a current against its voltage, the angle of i conj(v):
+    from the two phasors' angles (deg, from ``np.angle``), a subtraction where an arctangent of
+    ``s1 = v conj(i)`` would cost as much as the angles themselves. Where ``s1`` is zero (no current
+    or no voltage) the phase is 0, as ``np.angle`` gives for a zero phasor.
+    """
+    phase = i_angle - v_angle
+    phase = np.where(phase > 180.0, phase - 360.0, np.where(phase <= -180.0, phase + 360.0, phase))
+    phase[s1 == 0] = 0.0
+    return phase
 
 
 def _half_turn_positive(angle_deg: NDArray) -> NDArray:
@@ -197,8 +211,12 @@ def collect_quantity_rows(sol: Solution, locations: set[str] | None = None) -> Q
     end_column: dict[str, int] = {}
     if ends:
         i_ends = np.stack([end_currents[key] for _, key in ends])
-        v_ends = v_t[[net.bus_node[key[1]] for _, key in ends]]
-        power = _power_rows(rows, [location for location, _ in ends], v_ends, i_ends, sol.orders)
+        end_nodes = [net.bus_node[key[1]] for _, key in ends]
+        v_ends = v_t[end_nodes]
+        # each bus's voltage angle once, for the phase of every end at it
+        nodes, at_node = np.unique(end_nodes, return_inverse=True)
+        v_angle = np.degrees(np.angle(v_t[nodes, 0]))[at_node]
+        power = _power_rows(rows, [location for location, _ in ends], v_ends, i_ends, sol.orders, v_angle)
         end_column = {location: m for m, (location, _) in enumerate(ends)}
 
     # line branches whose both ends are asked for
