@@ -17,6 +17,7 @@ CREST_POINTS = 128  # sampled points per fundamental period (more when the highe
 SAMPLED_NEWTON_STEPS = 1  # from the parabola's vertex, within one point spacing of it
 CREST_POINTS_PER_PERIOD = 16  # at least this many sampled points per period of the highest order
 CREST_CHUNK = 4096  # waveforms sampled at a time: (chunk, points) stays a few MB
+SAME_WAVEFORM_RTOL = 1e-12  # places whose phasors agree this closely (up to sign) share one crest factor
 
 
 def crest_factor(x: NDArray[np.complex128], orders: list[int]) -> NDArray[np.float64]:
@@ -33,9 +34,6 @@ def crest_factor(x: NDArray[np.complex128], orders: list[int]) -> NDArray[np.flo
     with np.errstate(invalid="ignore", divide="ignore"):
         crest = peak / rms
     return crest[first]  # a place whose waveform is another's (or its negative) takes its crest factor
-
-
-SAME_WAVEFORM_RTOL = 1e-12
 
 
 def same_waveform_as(x: NDArray[np.complex128]) -> NDArray[np.intp]:
