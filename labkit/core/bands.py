@@ -88,7 +88,8 @@ class StreamingPercentiles:
         self._failed = False
         self._started = False
         self._both_tails = False
-        self._centre = self._reach = np.empty((n_rows, 1))
+        self._centre = np.full((n_rows, 1), np.nan)  # of the thresholds, set by start()
+        self._reach = np.full((n_rows, 1), np.nan)
         self._buffers: tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.bool_]] | None = None
 
     def start(self, block: NDArray[np.float64]) -> None:

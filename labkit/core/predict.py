@@ -145,9 +145,9 @@ def _sampled_band(net: Network, n: int, seed: int, harmonics: bool, locations: s
     A worker thread computes a block's rows while this thread solves the next block and
     selects the block before. When the selection cannot decide a row (a rare sample beyond a
     threshold, or rows that differ between blocks), every sample is solved again and kept
-    (:func:`_sampled_rows`). Every block's iterations start
-    from the ``nominal`` solution's operating point. Each block's tolerance factors are drawn
-    as it is solved (the numbers of :func:`~labkit.core.solve.sample_factors` with ``seed``).
+    (:func:`_sampled_rows`). Every block's iterations start from the ``nominal`` solution's
+    operating point. Each block's tolerance factors are drawn as it is solved (the numbers of
+    :func:`~labkit.core.solve.sample_factors` with ``seed``).
     """
     draws = ToleranceDraws(net, seed)
     step = _block_samples(net)
@@ -184,7 +184,10 @@ def _sampled_band(net: Network, n: int, seed: int, harmonics: bool, locations: s
                     alike = False  # a block's rows differ from the first block's
                     break
             pending = worker.submit(rows_of, sol, buffers[(k + 1) % 2])
-            selector.add(done, starts[k]) if k else selector.start(done)  # type: ignore[arg-type]
+            if k:
+                selector.add(done, starts[k])  # type: ignore[arg-type]
+            else:
+                selector.start(done)  # type: ignore[arg-type]
         if pending is None:
             selector.start(done)  # type: ignore[arg-type]
         elif alike:

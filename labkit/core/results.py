@@ -117,11 +117,11 @@ def _rms(x: NDArray) -> NDArray:
 
 
 def _power_rows(rows: QuantityRows, locations: list[str], v: NDArray, i: NDArray,
-                orders: list[int], v_angle: NDArray | None = None) -> dict[str, NDArray]:
+                orders: list[int], v_angle: NDArray) -> dict[str, NDArray]:
     """v, i: (M, H, S) phasors at M places (currents in each place's reference direction), one pass for all.
 
-    ``v_angle``: the angles (deg, from ``np.angle``) of ``v``'s fundamental, when already known
-    (places at one bus share them). Returns the (M, S) arrays of ``p`` and ``q1`` (in W and var)
+    ``v_angle``: the angles (deg, from ``np.angle``) of ``v``'s fundamental (places at one bus
+    share them). Returns the (M, S) arrays of ``p`` and ``q1`` (in W and var)
     for the line-loss rows.
     """
     v_rms, i_rms = _rms(v), _rms(i)
@@ -131,7 +131,7 @@ def _power_rows(rows: QuantityRows, locations: list[str], v: NDArray, i: NDArray
     with np.errstate(invalid="ignore", divide="ignore"):
         pf = np.where(s > 0, p / s, np.nan)
     i_angle = np.degrees(np.angle(i[:, 0]))
-    phase = phase_deg(i_angle, np.degrees(np.angle(v[:, 0])) if v_angle is None else v_angle, s1)
+    phase = phase_deg(i_angle, v_angle, s1)
     i_angle = _half_turn_positive(i_angle)
     names = ["i_rms", "i_angle", "p", "q1", "s", "pf", "phase"]
     values = [i_rms, i_angle, p, s1.imag, s, pf, phase]

@@ -355,9 +355,8 @@ def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, h
             assert y_nl is not None
             assert y_fixed is not None
             for j, e in nl_elems:
-                ld = net.bench.load(e.owner)
-                ratio = ld.rated_voltage**2 / max(abs(warm_start.v[0, 0, e.node_a]) ** 2, 1e-12)
-                y_nl[:, j] = y_fixed[:, j] * (ratio - 1.0)
+                y_nl[:, j] = _extra_admittance(y_fixed[:, j], net.bench.load(e.owner).rated_voltage,
+                                               warm_start.v[0, 0, e.node_a])
     converged, n_iter = True, 0
     by_compensation = (NONLINEAR_BY_COMPENSATION and not n_x and nl_elems
                        and all(e.node_b == NEUTRAL for _, e in nl_elems)
@@ -366,7 +365,7 @@ def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, h
         assert y_nl is not None
         assert y_fixed is not None
         result = _nonlinear_by_compensation(net, evaluate(x, None), nl_elems, y_nl, y_fixed)
-    for _outer in range(0 if by_compensation else 40 if nl_elems else 1):
+    for _outer in range(0 if by_compensation else NONLINEAR_MAX_ITER if nl_elems else 1):
         if n_x:
             converged = False
             for n_iter in range(1, MAX_NEWTON + 1):  # noqa: B007
@@ -396,12 +395,10 @@ def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, h
         for j, e in nl_elems:
             ld = net.bench.load(e.owner)
             assert isinstance(ld, NonlinearLoad)
-            # constant fundamental power: Y = conj(S1) / |V|^2, the compiled Y is at rated voltage
-            ratio = ld.rated_voltage**2 / np.maximum(np.abs(v[:, e.node_a]) ** 2, 1e-12)
-            y_new[:, j] = y_fixed[:, j] * (ratio - 1.0)
+            y_new[:, j] = _extra_admittance(y_fixed[:, j], ld.rated_voltage, v[:, e.node_a])
         change = np.max(np.abs(y_new - y_nl)) if y_nl.size else 0.0
         y_nl = y_new
-        if change < 1e-12:
+        if change < NONLINEAR_TOL:
             break
     if not converged:
         warnings.append(f"source-role iteration did not converge in {MAX_NEWTON} steps")
@@ -429,9 +426,17 @@ def solve_network(net: Network, factors: NDArray[np.float64] | None = None, *, h
 
 
 NONLINEAR_TOL = 1e-12  # change of the nonlinear loads' equivalent admittances (S) between iterates
+NONLINEAR_MAX_ITER = 40
 NONLINEAR_BY_COMPENSATION = True
 """Where it applies, iterate the nonlinear loads on their buses alone (False: re-solve the whole
 network at every iterate, the general path, kept as the reference)."""
+
+
+def _extra_admittance(fixed: NDArray[np.complex128], rated_voltage: NDArray | float,
+                      v_bus: NDArray[np.complex128] | complex) -> NDArray[np.complex128]:
+    """A nonlinear load's fundamental admittance beyond its compiled one, at bus voltage ``v_bus``:
+    constant fundamental power, Y = conj(S1) / |V|^2, where the compiled Y is at rated voltage."""
+    return fixed * (rated_voltage**2 / np.maximum(np.abs(v_bus) ** 2, 1e-12) - 1.0)
 
 
 def _nonlinear_by_compensation(net: Network, base: tuple, nl_elems: list, y_nl: NDArray[np.complex128],
@@ -464,21 +469,22 @@ def _nonlinear_by_compensation(net: Network, base: tuple, nl_elems: list, y_nl: 
         failed = failed | bad
     z = np.stack([x[:, nodes] for x in responses], axis=2)  # (S, k, k): z[:, i, j] = response at i to j
     u0 = v0[:, nodes]
-    rated = np.array([net.bench.load(e.owner).rated_voltage for _, e in nl_elems]) ** 2
+    rated = np.array([net.bench.load(e.owner).rated_voltage for _, e in nl_elems])
     fixed = y_fixed[:, columns]
     dy = y_nl[:, columns]
-    eye = np.eye(k)
-    for _ in range(40):
-        u = u0 / (1 + z[:, 0, 0] * dy[:, 0])[:, None] if k == 1 else np.linalg.solve(
-            eye + z * dy[:, None, :], u0[..., None])[..., 0]
-        # constant fundamental power: Y = conj(S1) / |V|^2, the compiled Y is at rated voltage
-        dy_new = fixed * (rated / np.maximum(np.abs(u) ** 2, 1e-12) - 1.0)
-        change = np.max(np.abs(dy_new - dy)) if dy.size else 0.0
+
+    def bus_voltages(dy: NDArray[np.complex128]) -> NDArray[np.complex128]:  # u = (I + Z dY)^-1 u0
+        if k == 1:
+            return u0 / (1 + z[:, 0, 0] * dy[:, 0])[:, None]
+        return np.linalg.solve(np.eye(k) + z * dy[:, None, :], u0[..., None])[..., 0]
+
+    for _ in range(NONLINEAR_MAX_ITER):
+        dy_new = _extra_admittance(fixed, rated, bus_voltages(dy))
+        change = np.max(np.abs(dy_new - dy))
         dy = dy_new
         if change < NONLINEAR_TOL:
             break
-    u = u0 / (1 + z[:, 0, 0] * dy[:, 0])[:, None] if k == 1 else np.linalg.solve(
-        eye + z * dy[:, None, :], u0[..., None])[..., 0]
+    u = bus_voltages(dy)
     v = v0.T.copy()  # node-major, as the linear solves give it
     for j, x in enumerate(responses):
         v -= x.T * (dy[:, j] * u[:, j])
